@@ -1,0 +1,3 @@
+//! Binomial intervals and quantiles used to summarise ensembles.
+//!
+//! OWNER: ensemble helper.

@@ -1,0 +1,3 @@
+//! First-order weak-selection expansion of fixation probabilities.
+//!
+//! OWNER: approximations helper.

@@ -1,0 +1,1 @@
+//! demefix service library: job documents, validation, provenance and the command line.

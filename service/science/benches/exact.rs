@@ -1,0 +1,4 @@
+//! Benchmarks of the exact method (`cargo bench -p demefix-science --bench exact`).
+fn main() {
+    divan::main();
+}

@@ -1,0 +1,143 @@
+//! Throughput of the ensemble method: state-changing events per second per core (by wall
+//! clock and by CPU time of the one-thread run), and the speed-up from one to two threads.
+//!
+//! `cargo run --release -p demefix-science --example ensemble_throughput`
+
+use demefix_science::ensemble::{EnsembleConfig, EnsembleJob};
+use demefix_science::{Model, Population, Rule, Scope, Start, StochasticMatrix};
+use std::time::Instant;
+
+/// A small deterministic generator for the test matrices (not the simulation's streams).
+struct Lcg(u64);
+
+impl Lcg {
+    fn next(&mut self) -> f64 {
+        self.0 = self
+            .0
+            .wrapping_mul(6364136223846793005)
+            .wrapping_add(1442695040888963407);
+        ((self.0 >> 11) as f64 / (1u64 << 53) as f64) * 0.9 + 0.1
+    }
+}
+
+fn dense(m: usize, rng: &mut Lcg) -> Vec<Vec<f64>> {
+    (0..m)
+        .map(|i| {
+            (0..m)
+                .map(|j| if i == j { m as f64 } else { rng.next() })
+                .collect()
+        })
+        .collect()
+}
+
+fn sparse(m: usize, rng: &mut Lcg) -> Vec<Vec<f64>> {
+    // about five nonzeros per row: self, both ring neighbours, two pseudo-random demes
+    (0..m)
+        .map(|i| {
+            let mut row = vec![0.0; m];
+            row[i] = 2.0;
+            row[(i + 1) % m] = rng.next();
+            row[(i + m - 1) % m] = rng.next();
+            for _ in 0..2 {
+                let j = (rng.next() * 1e9) as usize % m;
+                row[j] += rng.next();
+            }
+            row
+        })
+        .collect()
+}
+
+fn pool(threads: usize) -> rayon::ThreadPool {
+    rayon::ThreadPoolBuilder::new()
+        .num_threads(threads)
+        .build()
+        .expect("thread pool")
+}
+
+/// CPU seconds used by this process so far (user + system, from /proc; Linux clock ticks of
+/// 1/100 s), so that a busy machine does not understate the per-core rate.
+fn cpu_seconds() -> f64 {
+    let stat = std::fs::read_to_string("/proc/self/stat").unwrap_or_default();
+    let after = stat.rsplit_once(')').map_or("", |(_, rest)| rest);
+    let fields: Vec<&str> = after.split_whitespace().collect();
+    let ticks = |i: usize| {
+        fields
+            .get(i)
+            .and_then(|x| x.parse::<f64>().ok())
+            .unwrap_or(0.0)
+    };
+    // fields after the command name start at field 3 (state); utime = 14, stime = 15
+    (ticks(11) + ticks(12)) / 100.0
+}
+
+/// Runs `replicates` replicates on `threads` threads: (state changes, wall seconds, CPU
+/// seconds).
+fn measure(model: &Model, replicates: u64, threads: usize) -> (u128, f64, f64) {
+    let config = EnsembleConfig {
+        seed: 42,
+        replicates,
+        chunk_size: replicates,
+        target_half_width: None,
+        max_generations: u64::MAX / (1 << 24),
+        arrival_fractions: vec![0.5, 1.0],
+    };
+    let job = EnsembleJob::new(model, Start::Uniform, &config).expect("valid job");
+    let pool = pool(threads);
+    let (t0, c0) = (Instant::now(), cpu_seconds());
+    let chunk = job.run_chunk(0..replicates, &pool);
+    let secs = t0.elapsed().as_secs_f64();
+    let cpu = cpu_seconds() - c0;
+    let changes = chunk
+        .replicates
+        .iter()
+        .map(|r| u128::from(r.state_changes))
+        .sum();
+    (changes, secs, cpu)
+}
+
+/// Name, deme sizes, matrix rows, replicates.
+type Case = (&'static str, Vec<u64>, Vec<Vec<f64>>, u64);
+
+fn main() {
+    let mut rng = Lcg(7);
+    let cases: Vec<Case> = vec![
+        ("m=2 dense", vec![100, 100], dense(2, &mut rng), 20000),
+        ("m=10 dense", vec![20; 10], dense(10, &mut rng), 20000),
+        ("m=100 dense", vec![10; 100], dense(100, &mut rng), 100),
+        ("m=1000 sparse", vec![5; 1000], sparse(1000, &mut rng), 40),
+    ];
+    println!(
+        "{:<15} {:<12} {:>12} {:>11} {:>13} {:>9} {:>9}",
+        "case", "rule", "changes", "Mev/s wall", "Mev/cpu-s", "1->2 thr", "s (1 thr)"
+    );
+    // optional arguments: a case-name filter and a divisor of the replicate counts
+    let only = std::env::args().nth(1);
+    let divisor: u64 = std::env::args()
+        .nth(2)
+        .and_then(|d| d.parse().ok())
+        .unwrap_or(1);
+    for (name, sizes, rows, replicates) in &cases {
+        if only.as_ref().is_some_and(|o| !name.contains(o.as_str())) {
+            continue;
+        }
+        for rule in [Rule::DeathBirth, Rule::BirthDeath] {
+            let pop = Population::new(sizes.clone()).expect("sizes");
+            let kernel = StochasticMatrix::from_weights(rows).expect("matrix");
+            let model = Model::new(&pop, kernel, rule, Scope::Deme, 0.2).expect("model");
+            let replicates = (*replicates / divisor).max(1);
+            let (changes, one, cpu) = measure(&model, replicates, 1);
+            let (changes2, two, _) = measure(&model, replicates, 2);
+            assert_eq!(changes, changes2, "results depend on the thread count");
+            println!(
+                "{:<15} {:<12} {:>12} {:>11.1} {:>13.1} {:>9.2} {:>9.2}",
+                name,
+                rule.as_str(),
+                changes,
+                changes as f64 / one / 1e6,
+                changes as f64 / cpu / 1e6,
+                one / two,
+                one
+            );
+        }
+    }
+}

@@ -1,0 +1,232 @@
+//! The resumable aggregate of an ensemble: integer counts, integer time sums and the
+//! per-replicate time lists, merged chunk by chunk in replicate order.
+//!
+//! Everything inside is an integer, so merging is exact and the final summary (means and
+//! quantiles computed only in [`Accumulator::finish`]) does not depend on how the replicates
+//! were split into chunks or threads.
+
+use super::chain::{End, ReplicateOutcome};
+use super::{EnsembleSummary, StopReason, TimeQuantiles};
+use crate::stats::{quantile, wilson, Z95};
+use serde::{Deserialize, Serialize};
+use std::collections::BTreeMap;
+
+/// Early stopping is judged only when the number of merged replicates is a multiple of this,
+/// whatever the chunk size.
+pub const EARLY_STOP_GRID: u64 = 1000;
+
+/// The outcomes of replicates `start .. start + replicates.len()`, in index order.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+pub struct ChunkOutcome {
+    /// Index of the first replicate.
+    pub start: u64,
+    /// One outcome per replicate.
+    pub replicates: Vec<ReplicateOutcome>,
+}
+
+/// Everything needed to finish or resume an ensemble. Serialise it after every chunk to
+/// resume after a crash with bit-identical results.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+pub struct Accumulator {
+    /// Digest of the cell key and every setting that changes results (replicates, limits,
+    /// arrival fractions, early-stopping target); a checkpoint only resumes its own job.
+    pub(crate) fingerprint: [u8; 32],
+    pub(crate) requested: u64,
+    pub(crate) demes: usize,
+    pub(crate) fractions: usize,
+    pub(crate) ticks_per_generation: u64,
+    pub(crate) next: u64,
+    pub(crate) fixed: u64,
+    pub(crate) lost: u64,
+    pub(crate) unresolved: u64,
+    #[serde(with = "decimal")]
+    pub(crate) absorption_ticks: u128,
+    #[serde(with = "decimal")]
+    pub(crate) fixation_ticks: u128,
+    #[serde(with = "decimal")]
+    pub(crate) state_changes: u128,
+    /// Absorption times of absorbed replicates, in replicate order.
+    pub(crate) absorption_times: Vec<u64>,
+    /// Fixation times of fixed replicates, in replicate order.
+    pub(crate) fixation_times: Vec<u64>,
+    /// `arrivals[deme * fractions + f]`: arrival times over fixed replicates.
+    pub(crate) arrivals: Vec<Vec<u64>>,
+    pub(crate) target_reached: bool,
+}
+
+impl Accumulator {
+    pub(crate) fn new(
+        fingerprint: [u8; 32],
+        requested: u64,
+        demes: usize,
+        fractions: usize,
+        ticks_per_generation: u64,
+    ) -> Self {
+        Self {
+            fingerprint,
+            requested,
+            demes,
+            fractions,
+            ticks_per_generation,
+            next: 0,
+            fixed: 0,
+            lost: 0,
+            unresolved: 0,
+            absorption_ticks: 0,
+            fixation_ticks: 0,
+            state_changes: 0,
+            absorption_times: Vec::new(),
+            fixation_times: Vec::new(),
+            arrivals: vec![Vec::new(); demes * fractions],
+            target_reached: false,
+        }
+    }
+
+    /// Index of the next replicate to run (= replicates merged so far).
+    pub fn next_replicate(&self) -> u64 {
+        self.next
+    }
+
+    /// Whether nothing is left to run: all requested replicates merged, or the target met.
+    pub fn is_finished(&self) -> bool {
+        self.target_reached || self.next >= self.requested
+    }
+
+    /// Total state changes over the merged replicates (a measure of work done).
+    pub fn state_changes(&self) -> u128 {
+        self.state_changes
+    }
+
+    /// `(fixed, lost, unresolved)` so far.
+    pub fn counts(&self) -> (u64, u64, u64) {
+        (self.fixed, self.lost, self.unresolved)
+    }
+
+    /// The reported 95% interval: Wilson lower bound of `fixed / n`, Wilson upper bound of
+    /// `(fixed + unresolved) / n`.
+    fn interval(&self) -> (f64, f64) {
+        let lo = wilson(self.fixed, self.next, Z95).0;
+        let hi = wilson(self.fixed + self.unresolved, self.next, Z95).1;
+        (lo, hi)
+    }
+
+    fn push(&mut self, outcome: ReplicateOutcome) {
+        self.next += 1;
+        self.state_changes += u128::from(outcome.state_changes);
+        match outcome.end {
+            End::Fixed => {
+                self.fixed += 1;
+                self.fixation_ticks += u128::from(outcome.time);
+                self.absorption_ticks += u128::from(outcome.time);
+                self.fixation_times.push(outcome.time);
+                self.absorption_times.push(outcome.time);
+                for (list, t) in self.arrivals.iter_mut().zip(outcome.arrivals) {
+                    list.push(t);
+                }
+            }
+            End::Lost => {
+                self.lost += 1;
+                self.absorption_ticks += u128::from(outcome.time);
+                self.absorption_times.push(outcome.time);
+            }
+            End::Unresolved => self.unresolved += 1,
+        }
+    }
+
+    /// Merges a chunk that starts at [`Self::next_replicate`], replicate by replicate. With a
+    /// target half-width, the criterion is judged at every multiple of [`EARLY_STOP_GRID`];
+    /// once it holds, the rest of the chunk is dropped. Returns whether the target was met.
+    ///
+    /// # Panics
+    /// If the chunk does not start at the next replicate.
+    pub fn merge(&mut self, chunk: ChunkOutcome, target_half_width: Option<f64>) -> bool {
+        assert_eq!(
+            chunk.start, self.next,
+            "chunks must be merged in replicate order"
+        );
+        for outcome in chunk.replicates {
+            if self.is_finished() {
+                break;
+            }
+            self.push(outcome);
+            if let Some(h) = target_half_width {
+                if self.next % EARLY_STOP_GRID == 0 {
+                    let (lo, hi) = self.interval();
+                    if (hi - lo) / 2.0 <= h {
+                        self.target_reached = true;
+                    }
+                }
+            }
+        }
+        self.target_reached
+    }
+
+    /// The summary of the replicates merged so far.
+    pub fn finish(&self) -> EnsembleSummary {
+        let n = self.next;
+        let g = self.ticks_per_generation as f64;
+        let absorbed = self.fixed + self.lost;
+        let mean = |sum: u128, count: u64| (count > 0).then(|| sum as f64 / count as f64 / g);
+        let quantiles = |times: &[u64]| -> Option<TimeQuantiles> {
+            if times.is_empty() {
+                return None;
+            }
+            let mut sorted = times.to_vec();
+            sorted.sort_unstable();
+            let x: Vec<f64> = sorted.into_iter().map(|t| t as f64 / g).collect();
+            Some(TimeQuantiles {
+                q05: quantile(&x, 0.05),
+                median: quantile(&x, 0.5),
+                q95: quantile(&x, 0.95),
+            })
+        };
+        let arrival = (0..self.demes)
+            .map(|i| {
+                (0..self.fractions)
+                    .filter_map(|f| {
+                        quantiles(&self.arrivals[i * self.fractions + f]).map(|q| (f, q))
+                    })
+                    .collect::<BTreeMap<_, _>>()
+            })
+            .collect();
+        let stop = if self.target_reached {
+            StopReason::TargetReached
+        } else if self.next >= self.requested {
+            StopReason::Completed
+        } else {
+            StopReason::Cancelled
+        };
+        EnsembleSummary {
+            replicates: n,
+            fixed: self.fixed,
+            lost: self.lost,
+            unresolved: self.unresolved,
+            fixation_probability: if n > 0 {
+                self.fixed as f64 / n as f64
+            } else {
+                0.0
+            },
+            ci95: self.interval(),
+            mean_absorption_generations: mean(self.absorption_ticks, absorbed),
+            mean_fixation_generations: mean(self.fixation_ticks, self.fixed),
+            fixation_quantiles: quantiles(&self.fixation_times),
+            absorption_quantiles: quantiles(&self.absorption_times),
+            arrival,
+            stop,
+        }
+    }
+}
+
+/// `u128` as a decimal string (JSON numbers above 2^53 are not portable).
+mod decimal {
+    use serde::{de::Error, Deserialize, Deserializer, Serializer};
+
+    pub(super) fn serialize<S: Serializer>(v: &u128, s: S) -> Result<S::Ok, S::Error> {
+        s.serialize_str(&v.to_string())
+    }
+
+    pub(super) fn deserialize<'de, D: Deserializer<'de>>(d: D) -> Result<u128, D::Error> {
+        let text = String::deserialize(d)?;
+        text.parse().map_err(D::Error::custom)
+    }
+}

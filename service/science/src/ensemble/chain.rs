@@ -1,0 +1,790 @@
+//! One replicate of the chain on the count vector: a pure step on a replicate state, and the
+//! loop that runs a replicate to its end.
+//!
+//! Death-birth and birth-death run as a jump chain. The state keeps, per deme `i`, the rate
+//! `u_i` of `k -> k + e_i` and `d_i` of `k -> k - e_i` (the model's per-event probabilities
+//! times a common denominator: `N` for death-birth, `W = r K + N - K` for birth-death). The
+//! chance that an event changes the state is `lambda = sum (u + d) / denominator`; the number
+//! of events up to and including the change is drawn as Geometric(`lambda`)
+//! (`1 + floor(E / -ln(1 - lambda))`, `E ~ Exp(1)`), then the change
+//! is picked in proportion to the rates. Wright-Fisher draws one binomial per deme per
+//! generation with the model's refill probabilities.
+//!
+//! Every rate is built from per-target sums over source demes, `P_i = sum_j w_ij a_j` and
+//! `Q_i = sum_j w_ij c_j`, where `w` is the rule's matrix and `(a_j, c_j)` depend on `k_j`
+//! alone:
+//!
+//! | rule, scope | `w_ij` | `(a_j, c_j)` | `(u_i, d_i)` |
+//! |---|---|---|---|
+//! | death-birth, deme | `B[i][j]` | `(r k_j, n_j - k_j) / (r k_j + n_j - k_j)` | `((n_i - k_i) P_i, k_i Q_i)` |
+//! | death-birth, neighbourhood | `B[i][j]` | `(r k_j, n_j - k_j) / n_j` | `((n_i - k_i) P_i, k_i Q_i) / (P_i + Q_i)` |
+//! | birth-death | `F[j][i]` | `(r k_j, n_j - k_j)` | `((n_i - k_i) P_i, k_i Q_i) / n_i` |
+//!
+//! When `k_j` changes only the targets `i` with `w_ij > 0` change (column `j` of `B`, row `j`
+//! of `F`), so an event costs `O(nonzeros of that line)`; the change is then picked from a
+//! sum tree over the `2 m` rates (rebuilt in one pass for few demes or a dense matrix,
+//! updated along the changed paths otherwise). Integer counts of sources holding variants and
+//! residents make a sum that must be 0 exactly 0, and all sums are rebuilt from scratch
+//! every [`REFRESH_EVERY`] state changes, so rounding never accumulates without bound.
+
+use super::stream::uniform;
+use super::tree::SumTree;
+use crate::model::{Model, Rule, Scope};
+use crate::start::Start;
+use rand::Rng;
+use rand_distr::{Binomial, Distribution, Exp1};
+use serde::{Deserialize, Serialize};
+
+/// State changes between two rebuilds of the incremental sums (a fixed number, so a
+/// replicate is the same whatever else runs).
+pub const REFRESH_EVERY: u64 = 4096;
+
+/// Up to this many demes (or with a dense matrix, at least a quarter of its entries
+/// nonzero) all rates are rewritten and the sum tree rebuilt in one pass per event; above
+/// it, only the changed rates and their ancestors are updated.
+pub const REBUILD_ALL_DEMES: usize = 32;
+
+/// How a replicate ended.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum End {
+    /// Every individual carries the variant.
+    Fixed,
+    /// The variant is gone, or the chain froze in a state it can never leave
+    /// (possible with a reducible matrix) without having fixed.
+    Lost,
+    /// Still running after `max_generations`.
+    Unresolved,
+}
+
+/// What one replicate produced. Times are in ticks: events for death-birth and birth-death,
+/// generations for Wright-Fisher.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+pub struct ReplicateOutcome {
+    /// How it ended.
+    pub end: End,
+    /// Ticks until fixation or loss (the last state change if the chain froze); for an
+    /// unresolved replicate, the tick at which it was stopped.
+    pub time: u64,
+    /// Number of state changes (events that changed the count vector, or generations).
+    pub state_changes: u64,
+    /// For a fixed replicate, `arrivals[deme * fractions + f]` is the first tick at which
+    /// the variant's count in `deme` reached `ceil(arrival_fractions[f] * n_deme)`; empty
+    /// otherwise.
+    pub arrivals: Vec<u64>,
+}
+
+// Kind codes for the monomorphised hot loop (`const K: u8`).
+const DB_DEME: u8 = 0;
+const DB_NEIGHBOURHOOD: u8 = 1;
+const BD: u8 = 2;
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum Kind {
+    DeathBirthDeme,
+    DeathBirthNeighbourhood,
+    BirthDeath,
+    WrightFisher,
+}
+
+/// Read-only tables of one cell, shared by all replicates.
+#[derive(Debug, Clone)]
+pub(crate) struct Tables {
+    kind: Kind,
+    r: f64,
+    n: Vec<u64>,
+    inv_n: Vec<f64>,
+    total: u64,
+    totalf: f64,
+    inv_total: f64,
+    /// Targets `(i, w_ij)` of source `j`: `infl_*[infl_start[j]..infl_start[j + 1]]`.
+    infl_start: Vec<usize>,
+    infl_target: Vec<usize>,
+    infl_w: Vec<f64>,
+    /// Sources `(j, w_ij)` of target `i`.
+    src_start: Vec<usize>,
+    src_idx: Vec<usize>,
+    src_w: Vec<f64>,
+    /// Arrival thresholds of deme `i`, ascending: `arr_*[arr_start[i]..arr_start[i + 1]]`.
+    arr_start: Vec<usize>,
+    arr_thr: Vec<u64>,
+    arr_slot: Vec<usize>,
+    pub(crate) fractions: usize,
+    pub(crate) rebuild_all: bool,
+    refresh_every: u64,
+    /// Tick limit: `max_generations * N` events, or `max_generations` generations.
+    max_ticks: u64,
+    /// Fixed start deme, or cumulative start weights to draw it from.
+    start_deme: Option<usize>,
+    start_cumulative: Vec<f64>,
+    /// The all-resident state with every sum built, copied at the start of each replicate
+    /// (jump chains only).
+    resident: Option<Box<Replicate>>,
+}
+
+/// Count to float through `i64` (one instruction on x86-64; counts are far below 2^63).
+#[inline(always)]
+fn as_f64(x: u64) -> f64 {
+    x as i64 as f64
+}
+
+/// `ceil(f n)` read with a relative tolerance of 1e-9, so that `0.3 * 10` gives 3, not 4.
+pub(crate) fn arrival_threshold(f: f64, n: u64) -> u64 {
+    let x = f * n as f64;
+    let c = (x - 1e-9 * x.max(1.0)).ceil();
+    (c.max(1.0) as u64).min(n)
+}
+
+impl Tables {
+    pub(crate) fn new(
+        model: &Model,
+        start: Start,
+        max_generations: u64,
+        fractions: &[f64],
+    ) -> Self {
+        let kind = match (model.rule(), model.scope()) {
+            (Rule::DeathBirth, Scope::Deme) => Kind::DeathBirthDeme,
+            (Rule::DeathBirth, Scope::Neighbourhood) => Kind::DeathBirthNeighbourhood,
+            (Rule::BirthDeath, _) => Kind::BirthDeath,
+            (Rule::WrightFisher, _) => Kind::WrightFisher,
+        };
+        let m = model.demes();
+        let kernel = model.kernel();
+        let n = model.sizes().to_vec();
+        let (mut infl_start, mut infl_target, mut infl_w) = (vec![0], Vec::new(), Vec::new());
+        let (mut src_start, mut src_idx, mut src_w) = (vec![0], Vec::new(), Vec::new());
+        for j in 0..m {
+            // birth-death: j disperses along row j of F; otherwise j recruits into column j of B
+            let targets: Vec<(usize, f64)> = match kind {
+                Kind::BirthDeath => kernel.row(j).collect(),
+                _ => kernel.col(j).collect(),
+            };
+            for (i, w) in targets {
+                infl_target.push(i);
+                infl_w.push(w);
+            }
+            infl_start.push(infl_target.len());
+        }
+        for i in 0..m {
+            let sources: Vec<(usize, f64)> = match kind {
+                Kind::BirthDeath => kernel.col(i).collect(),
+                _ => kernel.row(i).collect(),
+            };
+            for (j, w) in sources {
+                src_idx.push(j);
+                src_w.push(w);
+            }
+            src_start.push(src_idx.len());
+        }
+        let (mut arr_start, mut arr_thr, mut arr_slot) = (vec![0], Vec::new(), Vec::new());
+        for (i, &ni) in n.iter().enumerate() {
+            let mut list: Vec<(u64, usize)> = fractions
+                .iter()
+                .enumerate()
+                .map(|(f, &x)| (arrival_threshold(x, ni), i * fractions.len() + f))
+                .collect();
+            list.sort_unstable();
+            for (t, slot) in list {
+                arr_thr.push(t);
+                arr_slot.push(slot);
+            }
+            arr_start.push(arr_thr.len());
+        }
+        let total = model.total();
+        let max_ticks = match kind {
+            Kind::WrightFisher => max_generations,
+            _ => max_generations.saturating_mul(total),
+        };
+        let (start_deme, start_cumulative) = match start {
+            Start::Deme(i) => (Some(i), Vec::new()),
+            other => {
+                let mut acc = 0.0;
+                let cumulative = other
+                    .deme_weights(model)
+                    .into_iter()
+                    .map(|w| {
+                        acc += w;
+                        acc
+                    })
+                    .collect();
+                (None, cumulative)
+            }
+        };
+        let mut tables = Self {
+            kind,
+            r: model.fitness(),
+            inv_n: n.iter().map(|&x| 1.0 / x as f64).collect(),
+            n,
+            total,
+            totalf: total as f64,
+            inv_total: 1.0 / total as f64,
+            infl_start,
+            infl_target,
+            infl_w,
+            src_start,
+            src_idx,
+            src_w,
+            arr_start,
+            arr_thr,
+            arr_slot,
+            fractions: fractions.len(),
+            // a dense matrix costs O(m) per event anyway: scan rather than keep a tree
+            rebuild_all: m <= REBUILD_ALL_DEMES || 4 * kernel.nnz() >= m * m,
+            refresh_every: REFRESH_EVERY,
+            max_ticks,
+            start_deme,
+            start_cumulative,
+            resident: None,
+        };
+        tables.build_resident();
+        tables
+    }
+
+    /// Builds the all-resident snapshot (again, after a change of the selection method).
+    pub(crate) fn build_resident(&mut self) {
+        self.resident = None;
+        if self.kind != Kind::WrightFisher {
+            let mut base = Replicate::new(self);
+            base.refresh(self);
+            self.resident = Some(Box::new(base));
+        }
+    }
+
+    fn demes(&self) -> usize {
+        self.n.len()
+    }
+
+    /// `(a_j, c_j)` for a source deme holding `kj` variants.
+    #[inline(always)]
+    fn source_values<const K: u8>(&self, j: usize, kj: u64) -> (f64, f64) {
+        let mutant = self.r * as_f64(kj);
+        let resident = as_f64(self.n[j] - kj);
+        match K {
+            DB_DEME => {
+                let w = mutant + resident;
+                (mutant / w, resident / w)
+            }
+            DB_NEIGHBOURHOOD => (mutant * self.inv_n[j], resident * self.inv_n[j]),
+            _ => (mutant, resident),
+        }
+    }
+
+    fn code(&self) -> u8 {
+        match self.kind {
+            Kind::DeathBirthDeme => DB_DEME,
+            Kind::DeathBirthNeighbourhood => DB_NEIGHBOURHOOD,
+            Kind::BirthDeath | Kind::WrightFisher => BD,
+        }
+    }
+
+    fn draw_start<R: Rng>(&self, rng: &mut R) -> usize {
+        if let Some(i) = self.start_deme {
+            return i;
+        }
+        let total = *self.start_cumulative.last().expect("at least one deme");
+        let v = uniform(rng) * total;
+        let mut last_positive = 0;
+        let mut prev = 0.0;
+        for (i, &c) in self.start_cumulative.iter().enumerate() {
+            if c > prev {
+                if v < c {
+                    return i;
+                }
+                last_positive = i;
+            }
+            prev = c;
+        }
+        last_positive
+    }
+}
+
+/// Sums and counts of one deme: as a source, `(a_j, c_j)`; as a target, `(P_i, Q_i)` and
+/// the numbers of its sources holding variants (`nv`) and residents (`nr`).
+#[derive(Debug, Clone, Copy, Default)]
+struct DemeSums {
+    a: f64,
+    c: f64,
+    p: f64,
+    q: f64,
+    nv: u32,
+    nr: u32,
+}
+
+/// Result of one step of a replicate.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub(crate) enum Status {
+    /// The state changed and is not absorbing.
+    Running,
+    /// The replicate ended.
+    Done(End),
+}
+
+/// The mutable state of one replicate; reused across replicates of a thread (every field is
+/// reset by [`Replicate::reset`], so a replicate never depends on the one before).
+#[derive(Debug, Clone)]
+pub(crate) struct Replicate {
+    pub(crate) k: Vec<u64>,
+    variants: u64,
+    /// Per-deme sums and counts, one record per deme (one bounds check per access).
+    st: Vec<DemeSums>,
+    /// Rates: leaf `2 i` is `u_i`, leaf `2 i + 1` is `d_i`.
+    tree: SumTree,
+    /// Ticks so far (events or generations), and the tick of the last state change.
+    ticks: u64,
+    last_change: u64,
+    changes: u64,
+    since_refresh: u64,
+    arrivals: Vec<u64>,
+    next_arrival: Vec<usize>,
+    refill: Vec<f64>,
+}
+
+impl Replicate {
+    pub(crate) fn new(t: &Tables) -> Self {
+        let m = t.demes();
+        Self {
+            k: vec![0; m],
+            variants: 0,
+            st: vec![DemeSums::default(); m],
+            tree: SumTree::new(2 * m),
+            ticks: 0,
+            last_change: 0,
+            changes: 0,
+            since_refresh: 0,
+            arrivals: vec![u64::MAX; m * t.fractions],
+            next_arrival: vec![0; m],
+            refill: vec![0.0; m],
+        }
+    }
+
+    /// Puts one variant in deme `start` at tick 0 and rebuilds every sum.
+    pub(crate) fn reset(&mut self, t: &Tables, start: usize) {
+        self.ticks = 0;
+        self.last_change = 0;
+        self.changes = 0;
+        self.since_refresh = 0;
+        self.arrivals.iter_mut().for_each(|x| *x = u64::MAX);
+        for (i, x) in self.next_arrival.iter_mut().enumerate() {
+            *x = t.arr_start[i];
+        }
+        match &t.resident {
+            Some(base) => {
+                // copy the all-resident sums (O(m)), then add the variant incrementally
+                self.k.copy_from_slice(&base.k);
+                self.st.copy_from_slice(&base.st);
+                self.tree.clone_from(&base.tree);
+                self.variants = 0;
+                self.add_first(t, start);
+            }
+            None => {
+                self.k.iter_mut().for_each(|x| *x = 0);
+                self.k[start] = 1;
+                self.variants = 1;
+                self.record_arrivals(t, start);
+            }
+        }
+    }
+
+    fn add_first(&mut self, t: &Tables, start: usize) {
+        match (t.code(), t.rebuild_all) {
+            (DB_DEME, true) => self.apply::<DB_DEME, true>(t, start, true),
+            (DB_DEME, false) => self.apply::<DB_DEME, false>(t, start, true),
+            (DB_NEIGHBOURHOOD, true) => self.apply::<DB_NEIGHBOURHOOD, true>(t, start, true),
+            (DB_NEIGHBOURHOOD, false) => self.apply::<DB_NEIGHBOURHOOD, false>(t, start, true),
+            (_, true) => self.apply::<BD, true>(t, start, true),
+            (_, false) => self.apply::<BD, false>(t, start, true),
+        }
+    }
+
+    /// Runs the jump chain until the replicate ends.
+    fn run_jump<R: Rng, const K: u8, const ALL: bool>(&mut self, t: &Tables, rng: &mut R) -> End {
+        loop {
+            if let Status::Done(end) = self.jump_step::<R, K, ALL>(t, rng) {
+                return end;
+            }
+        }
+    }
+
+    /// One jump-chain step, dispatched on the rule at run time (for tests).
+    #[cfg(test)]
+    pub(crate) fn jump_step_any<R: Rng>(&mut self, t: &Tables, rng: &mut R) -> Status {
+        match (t.code(), t.rebuild_all) {
+            (DB_DEME, true) => self.jump_step::<R, DB_DEME, true>(t, rng),
+            (DB_DEME, false) => self.jump_step::<R, DB_DEME, false>(t, rng),
+            (DB_NEIGHBOURHOOD, true) => self.jump_step::<R, DB_NEIGHBOURHOOD, true>(t, rng),
+            (DB_NEIGHBOURHOOD, false) => self.jump_step::<R, DB_NEIGHBOURHOOD, false>(t, rng),
+            (_, true) => self.jump_step::<R, BD, true>(t, rng),
+            (_, false) => self.jump_step::<R, BD, false>(t, rng),
+        }
+    }
+
+    /// Denominator turning rates into per-event probabilities.
+    #[inline(always)]
+    pub(crate) fn denominator<const K: u8>(&self, t: &Tables) -> f64 {
+        match K {
+            BD => t.r * as_f64(self.variants) + as_f64(t.total - self.variants),
+            _ => t.totalf,
+        }
+    }
+
+    /// Rebuilds all sums, counts and rates from the count vector.
+    pub(crate) fn refresh(&mut self, t: &Tables) {
+        match (t.code(), t.rebuild_all) {
+            (DB_DEME, true) => self.refresh_with::<DB_DEME, true>(t),
+            (DB_DEME, false) => self.refresh_with::<DB_DEME, false>(t),
+            (DB_NEIGHBOURHOOD, true) => self.refresh_with::<DB_NEIGHBOURHOOD, true>(t),
+            (DB_NEIGHBOURHOOD, false) => self.refresh_with::<DB_NEIGHBOURHOOD, false>(t),
+            (_, true) => self.refresh_with::<BD, true>(t),
+            (_, false) => self.refresh_with::<BD, false>(t),
+        }
+    }
+
+    fn refresh_with<const K: u8, const ALL: bool>(&mut self, t: &Tables) {
+        self.since_refresh = 0;
+        for j in 0..t.demes() {
+            let (a, c) = t.source_values::<K>(j, self.k[j]);
+            self.st[j].a = a;
+            self.st[j].c = c;
+        }
+        for i in 0..t.demes() {
+            let (mut p, mut q, mut nv, mut nr) = (0.0, 0.0, 0u32, 0u32);
+            for e in t.src_start[i]..t.src_start[i + 1] {
+                let (j, w) = (t.src_idx[e], t.src_w[e]);
+                p += w * self.st[j].a;
+                q += w * self.st[j].c;
+                nv += u32::from(self.k[j] > 0);
+                nr += u32::from(self.k[j] < t.n[j]);
+            }
+            self.st[i] = DemeSums {
+                p: if nv == 0 { 0.0 } else { p },
+                q: if nr == 0 { 0.0 } else { q },
+                nv,
+                nr,
+                ..self.st[i]
+            };
+            self.update_rates::<K, ALL>(t, i);
+        }
+        self.tree.rebuild();
+    }
+
+    /// Rate of `k -> k + e_i` (times the denominator).
+    #[cfg(test)]
+    pub(crate) fn up(&self, i: usize) -> f64 {
+        self.tree.leaf(2 * i)
+    }
+
+    /// Rate of `k -> k - e_i` (times the denominator).
+    #[cfg(test)]
+    pub(crate) fn down(&self, i: usize) -> f64 {
+        self.tree.leaf(2 * i + 1)
+    }
+
+    #[inline(always)]
+    fn update_rates<const K: u8, const ALL: bool>(&mut self, t: &Tables, i: usize) {
+        let p = self.st[i].p.max(0.0);
+        let q = self.st[i].q.max(0.0);
+        let ki = self.k[i];
+        let vacant = as_f64(t.n[i] - ki);
+        let held = as_f64(ki);
+        let (u, d) = match K {
+            DB_DEME => (vacant * p, held * q),
+            DB_NEIGHBOURHOOD => {
+                let s = p + q;
+                (vacant * p / s, held * q / s)
+            }
+            _ => (vacant * p * t.inv_n[i], held * q * t.inv_n[i]),
+        };
+        if ALL {
+            self.tree.set_pair_lazy(i, u, d);
+        } else {
+            self.tree.set_pair(i, u, d);
+        }
+    }
+
+    #[inline(always)]
+    fn record_arrivals(&mut self, t: &Tables, i: usize) {
+        let end = t.arr_start[i + 1];
+        let mut at = self.next_arrival[i];
+        while at < end && self.k[i] >= t.arr_thr[at] {
+            self.arrivals[t.arr_slot[at]] = self.ticks;
+            at += 1;
+        }
+        self.next_arrival[i] = at;
+    }
+
+    /// Applies `k_j -> k_j + 1` (`up`) or `k_j - 1` and updates the affected sums and rates.
+    #[inline(always)]
+    fn apply<const K: u8, const ALL: bool>(&mut self, t: &Tables, j: usize, up: bool) {
+        let nj = t.n[j];
+        let (dv, dr): (i32, i32) = if up {
+            self.k[j] += 1;
+            self.variants += 1;
+            (i32::from(self.k[j] == 1), -i32::from(self.k[j] == nj))
+        } else {
+            self.k[j] -= 1;
+            self.variants -= 1;
+            (-i32::from(self.k[j] == 0), i32::from(self.k[j] == nj - 1))
+        };
+        let (a, c) = t.source_values::<K>(j, self.k[j]);
+        let src = &mut self.st[j];
+        let da = a - src.a;
+        let dc = c - src.c;
+        src.a = a;
+        src.c = c;
+        let line = t.infl_start[j]..t.infl_start[j + 1];
+        for (&i, &w) in t.infl_target[line.clone()].iter().zip(&t.infl_w[line]) {
+            let target = &mut self.st[i];
+            target.p += w * da;
+            target.q += w * dc;
+            if dv != 0 {
+                target.nv = target.nv.wrapping_add_signed(dv);
+                if target.nv == 0 {
+                    target.p = 0.0;
+                }
+            }
+            if dr != 0 {
+                target.nr = target.nr.wrapping_add_signed(dr);
+                if target.nr == 0 {
+                    target.q = 0.0;
+                }
+            }
+            self.update_rates::<K, ALL>(t, i);
+        }
+        self.update_rates::<K, ALL>(t, j);
+        if ALL {
+            self.tree.rebuild();
+        }
+        if up {
+            self.record_arrivals(t, j);
+        }
+    }
+
+    /// One state change of the death-birth or birth-death jump chain.
+    #[inline(always)]
+    pub(crate) fn jump_step<R: Rng, const K: u8, const ALL: bool>(
+        &mut self,
+        t: &Tables,
+        rng: &mut R,
+    ) -> Status {
+        let total = self.tree.total();
+        if total <= 0.0 {
+            // no event can change a non-absorbing state: frozen
+            self.ticks = self.last_change;
+            return Status::Done(End::Lost);
+        }
+        let lambda = match K {
+            BD => total / self.denominator::<K>(t),
+            _ => total * t.inv_total,
+        };
+        let wait = if lambda >= 1.0 {
+            1
+        } else {
+            // Geometric(lambda) on {1, 2, ...} as 1 + floor(E / -log(1 - lambda)) with
+            // E = -log U ~ Exp(1) (drawn by ziggurat, which saves a logarithm); log1p only
+            // where 1 - lambda would lose digits. The float-to-int cast saturates.
+            let log_stay = if lambda < 0.01 {
+                (-lambda).ln_1p()
+            } else {
+                (1.0 - lambda).ln()
+            };
+            let e: f64 = Exp1.sample(rng);
+            let x = e / -log_stay;
+            (x as u64).saturating_add(1)
+        };
+        self.ticks = self.ticks.saturating_add(wait);
+        if self.ticks > t.max_ticks {
+            self.ticks = t.max_ticks;
+            return Status::Done(End::Unresolved);
+        }
+        let v = uniform(rng) * total;
+        let leaf = self.tree.find(v);
+        self.apply::<K, ALL>(t, leaf >> 1, leaf & 1 == 0);
+        self.changes += 1;
+        self.last_change = self.ticks;
+        if self.variants == 0 {
+            return Status::Done(End::Lost);
+        }
+        if self.variants == t.total {
+            return Status::Done(End::Fixed);
+        }
+        self.since_refresh += 1;
+        if self.since_refresh >= t.refresh_every {
+            self.refresh(t);
+        }
+        Status::Running
+    }
+
+    /// One Wright-Fisher generation.
+    pub(crate) fn generation<R: Rng>(&mut self, model: &Model, t: &Tables, rng: &mut R) -> Status {
+        model.refill_probabilities(&self.k, &mut self.refill);
+        let frozen = self
+            .refill
+            .iter()
+            .zip(&self.k)
+            .zip(&t.n)
+            .all(|((&p, &k), &n)| (p <= 0.0 && k == 0) || (p >= 1.0 && k == n));
+        if frozen {
+            self.ticks = self.last_change;
+            return Status::Done(End::Lost);
+        }
+        if self.ticks >= t.max_ticks {
+            return Status::Done(End::Unresolved);
+        }
+        self.ticks += 1;
+        let mut variants = 0;
+        for i in 0..t.demes() {
+            let p = self.refill[i].clamp(0.0, 1.0);
+            let draw = Binomial::new(t.n[i], p).expect("p in [0, 1]");
+            self.k[i] = draw.sample(rng);
+            variants += self.k[i];
+        }
+        self.variants = variants;
+        self.changes += 1;
+        self.last_change = self.ticks;
+        for i in 0..t.demes() {
+            self.record_arrivals(t, i);
+        }
+        if variants == 0 {
+            Status::Done(End::Lost)
+        } else if variants == t.total {
+            Status::Done(End::Fixed)
+        } else {
+            Status::Running
+        }
+    }
+
+    /// Runs a fresh replicate to its end, drawing everything from `rng`.
+    pub(crate) fn run<R: Rng>(
+        &mut self,
+        model: &Model,
+        t: &Tables,
+        rng: &mut R,
+    ) -> ReplicateOutcome {
+        let start = t.draw_start(rng);
+        self.reset(t, start);
+        let end = if self.variants == t.total {
+            End::Fixed
+        } else {
+            match (t.kind, t.rebuild_all) {
+                (Kind::WrightFisher, _) => loop {
+                    if let Status::Done(end) = self.generation(model, t, rng) {
+                        break end;
+                    }
+                },
+                (Kind::DeathBirthDeme, true) => self.run_jump::<R, DB_DEME, true>(t, rng),
+                (Kind::DeathBirthDeme, false) => self.run_jump::<R, DB_DEME, false>(t, rng),
+                (Kind::DeathBirthNeighbourhood, true) => {
+                    self.run_jump::<R, DB_NEIGHBOURHOOD, true>(t, rng)
+                }
+                (Kind::DeathBirthNeighbourhood, false) => {
+                    self.run_jump::<R, DB_NEIGHBOURHOOD, false>(t, rng)
+                }
+                (Kind::BirthDeath, true) => self.run_jump::<R, BD, true>(t, rng),
+                (Kind::BirthDeath, false) => self.run_jump::<R, BD, false>(t, rng),
+            }
+        };
+        let arrivals = if end == End::Fixed {
+            self.arrivals.clone()
+        } else {
+            Vec::new()
+        };
+        ReplicateOutcome {
+            end,
+            time: self.ticks,
+            state_changes: self.changes,
+            arrivals,
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::migration::StochasticMatrix;
+    use crate::population::Population;
+    use rand::SeedableRng;
+    use rand_chacha::ChaCha8Rng;
+
+    fn model(rule: Rule, scope: Scope, sizes: Vec<u64>, rows: &[Vec<f64>], s: f64) -> Model {
+        let pop = Population::new(sizes).unwrap();
+        let k = StochasticMatrix::from_weights(rows).unwrap();
+        Model::new(&pop, k, rule, scope, s).unwrap()
+    }
+
+    fn check_against_model(model: &Model, rebuild_all: bool, seed: u64) {
+        let mut t = Tables::new(model, Start::Deme(0), u64::MAX / 1024, &[0.5, 1.0]);
+        t.rebuild_all = rebuild_all;
+        t.refresh_every = u64::MAX; // test the incremental sums alone
+        t.build_resident();
+        let mut rep = Replicate::new(&t);
+        let mut rng = ChaCha8Rng::seed_from_u64(seed);
+        let m = model.demes();
+        let (mut up, mut down) = (vec![0.0; m], vec![0.0; m]);
+        let mut checked = 0;
+        for round in 0..150 {
+            rep.reset(&t, round % m);
+            loop {
+                model.event_probabilities(&rep.k, &mut up, &mut down);
+                let denom = match model.rule() {
+                    Rule::BirthDeath => rep.denominator::<BD>(&t),
+                    _ => rep.denominator::<DB_DEME>(&t),
+                };
+                for i in 0..m {
+                    for (want, got) in [(up[i], rep.up(i) / denom), (down[i], rep.down(i) / denom)]
+                    {
+                        // a move that cannot happen must be exactly impossible
+                        assert_eq!(want == 0.0, got == 0.0, "{:?} deme {i}", rep.k);
+                        assert!(
+                            (want - got).abs() <= 1e-12 * want.abs().max(1e-3),
+                            "{:?} deme {i}: {want} vs {got}",
+                            rep.k
+                        );
+                    }
+                }
+                checked += 1;
+                if rep.jump_step_any(&t, &mut rng) != Status::Running {
+                    break;
+                }
+            }
+        }
+        assert!(checked > 200, "trajectories too short: {checked}");
+    }
+
+    #[test]
+    fn incremental_rates_equal_the_model_along_random_trajectories() {
+        // a reducible-in-places sparse matrix and a dense asymmetric one
+        let sparse = vec![
+            vec![0.6, 0.4, 0.0, 0.0],
+            vec![0.0, 0.5, 0.5, 0.0],
+            vec![0.0, 0.0, 0.7, 0.3],
+            vec![0.2, 0.0, 0.0, 0.8],
+        ];
+        let dense = vec![
+            vec![0.5, 0.3, 0.2],
+            vec![0.1, 0.6, 0.3],
+            vec![0.25, 0.25, 0.5],
+        ];
+        let mut seed = 1;
+        for rule in [Rule::DeathBirth, Rule::BirthDeath] {
+            for scope in [Scope::Deme, Scope::Neighbourhood] {
+                for s in [0.3, -0.2] {
+                    for rebuild_all in [true, false] {
+                        let a = model(rule, scope, vec![2, 3, 4], &dense, s);
+                        check_against_model(&a, rebuild_all, seed);
+                        let b = model(rule, scope, vec![3, 1, 4, 2], &sparse, s);
+                        check_against_model(&b, rebuild_all, seed + 1);
+                        seed += 2;
+                    }
+                }
+            }
+        }
+    }
+
+    #[test]
+    fn arrival_thresholds_are_read_with_tolerance() {
+        assert_eq!(arrival_threshold(0.3, 10), 3);
+        assert_eq!(arrival_threshold(0.31, 10), 4);
+        assert_eq!(arrival_threshold(1.0, 7), 7);
+        assert_eq!(arrival_threshold(0.01, 7), 1);
+    }
+}

@@ -1,0 +1,150 @@
+//! Wall time, solver, residual and peak memory of the exact method on growing chains.
+//!
+//! `cargo run --release -p demefix-science --example exact_scaling` runs every case in its own
+//! child process (so that each peak RSS is its own); `... -- CASE [direct|iterative]` runs one.
+
+use demefix_science::exact::{self, ExactConfig, SolverChoice};
+use demefix_science::{Model, Population, Rule, Scope, StochasticMatrix};
+use std::process::Command;
+use std::time::Instant;
+
+/// Island model: `sizes`, recruitment matrix keeping `stay` at home and sharing the rest
+/// unevenly among the other demes.
+fn islands(sizes: &[u64], stay: f64, rule: Rule, s: f64) -> Model {
+    let m = sizes.len();
+    let rows: Vec<Vec<f64>> = (0..m)
+        .map(|i| {
+            let weights: Vec<f64> = (0..m)
+                .map(|j| {
+                    if i == j {
+                        0.0
+                    } else {
+                        (1 + (i + 2 * j) % 3) as f64
+                    }
+                })
+                .collect();
+            let total: f64 = weights.iter().sum();
+            (0..m)
+                .map(|j| {
+                    if i == j {
+                        stay
+                    } else {
+                        (1.0 - stay) * weights[j] / total
+                    }
+                })
+                .collect()
+        })
+        .collect();
+    let pop = Population::new(sizes.to_vec()).unwrap();
+    Model::new(
+        &pop,
+        StochasticMatrix::from_weights(&rows).unwrap(),
+        rule,
+        Scope::Deme,
+        s,
+    )
+    .unwrap()
+}
+
+/// A 20-node cycle with chords `i -- i + 7` (every node degree 4), one individual per node,
+/// death-birth with neighbourhood scope: 2^20 states.
+fn chorded_cycle() -> Model {
+    let n = 20usize;
+    let rows: Vec<Vec<f64>> = (0..n)
+        .map(|i| {
+            (0..n)
+                .map(|j| {
+                    let d = (i + n - j) % n;
+                    if [1, 7, n - 1, n - 7].contains(&d) {
+                        1.0
+                    } else {
+                        0.0
+                    }
+                })
+                .collect()
+        })
+        .collect();
+    let pop = Population::new(vec![1; n]).unwrap();
+    let b = StochasticMatrix::from_weights(&rows).unwrap();
+    Model::new(&pop, b, Rule::DeathBirth, Scope::Neighbourhood, 0.1).unwrap()
+}
+
+fn case(name: &str) -> Option<Model> {
+    Some(match name {
+        "islands_1e4" => islands(&[99, 99], 0.9, Rule::DeathBirth, 0.01),
+        "islands_1e5_two_demes" => islands(&[315, 316], 0.9, Rule::DeathBirth, 0.01),
+        "islands_1e5" => islands(&[45, 46, 47], 0.9, Rule::DeathBirth, 0.01),
+        "islands_1e5_birth_death" => islands(&[45, 46, 47], 0.9, Rule::BirthDeath, 0.01),
+        "islands_1e6" => islands(&[99, 99, 99], 0.9, Rule::DeathBirth, 0.01),
+        "islands_1e6_birth_death" => islands(&[99, 99, 99], 0.9, Rule::BirthDeath, 0.01),
+        "graph_2e20" => chorded_cycle(),
+        _ => return None,
+    })
+}
+
+const CASES: [&str; 7] = [
+    "islands_1e4",
+    "islands_1e5_two_demes",
+    "islands_1e5",
+    "islands_1e5_birth_death",
+    "islands_1e6",
+    "islands_1e6_birth_death",
+    "graph_2e20",
+];
+
+fn peak_rss_mib() -> f64 {
+    let status = std::fs::read_to_string("/proc/self/status").unwrap_or_default();
+    status
+        .lines()
+        .find_map(|l| l.strip_prefix("VmHWM:"))
+        .and_then(|v| v.trim().trim_end_matches("kB").trim().parse::<f64>().ok())
+        .map_or(f64::NAN, |kb| kb / 1024.0)
+}
+
+fn run(name: &str, solver: SolverChoice) {
+    let model = case(name).expect("unknown case");
+    let config = ExactConfig {
+        solver,
+        ..ExactConfig::default()
+    };
+    let started = Instant::now();
+    let solution = exact::solve(&model, &config);
+    let seconds = started.elapsed().as_secs_f64();
+    match solution {
+        Ok(sol) => {
+            let r = &sol.report;
+            println!(
+                "{name:<24} states {:>8} nnz {:>9} {:<16} iters {:>6} residual {:.1e} time {seconds:>7.2} s peak RSS {:>7.0} MiB  rho[0] {:.10} T_fix[0] {:.4}",
+                r.states,
+                r.nonzeros,
+                r.solver,
+                r.iterations.map_or("-".to_string(), |i| i.to_string()),
+                r.relative_residual,
+                peak_rss_mib(),
+                sol.per_deme[0].fixation_probability,
+                sol.per_deme[0].mean_fixation_generations,
+            );
+        }
+        Err(e) => println!("{name:<24} failed after {seconds:.2} s: {e}"),
+    }
+}
+
+fn main() {
+    let args: Vec<String> = std::env::args().skip(1).collect();
+    let solver = match args.get(1).map(String::as_str) {
+        Some("direct") => SolverChoice::Direct,
+        Some("iterative") => SolverChoice::Iterative,
+        _ => SolverChoice::Auto,
+    };
+    if let Some(name) = args.first() {
+        run(name, solver);
+        return;
+    }
+    let exe = std::env::current_exe().expect("own path");
+    for name in CASES {
+        let status = Command::new(&exe).arg(name).status().expect("child runs");
+        if !status.success() {
+            println!("{name:<24} child process failed: {status}");
+        }
+    }
+}

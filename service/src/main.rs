@@ -1,1 +1,5 @@
-fn main() {}
+//! The `demefix` command: see [`demefix::cli`].
+
+fn main() -> std::process::ExitCode {
+    demefix::cli::main()
+}

@@ -1,0 +1,226 @@
+//! The local command line: `demefix run` and `demefix validate`.
+//!
+//! This module owns everything at the process edge: reading the job (a file or `-` for
+//! stdin), the exit codes (0 success, 2 invalid job with the RFC 9457 problem document on
+//! stderr, 1 any other failure with a message on stderr), picking a seed when a job needs one
+//! and has none, the thread pool, and the progress bar on stderr. Results go to stdout as
+//! pretty JSON.
+
+use crate::compute::{self, ComputeError};
+use crate::document::{RunDocument, DISCLAIMER};
+use crate::problem::InvalidJob;
+use crate::provenance::Provenance;
+use crate::spec::{self, Limits, ResolvedMethod, ValidatedJob};
+use clap::{Args, Parser, Subcommand};
+use demefix_science::ensemble::ProgressObserver;
+use demefix_science::exact::ExactConfig;
+use indicatif::{ProgressBar, ProgressDrawTarget, ProgressStyle};
+use std::io::{IsTerminal, Read, Write};
+use std::process::ExitCode;
+use std::sync::atomic::AtomicBool;
+
+/// Fixation probabilities, times and arrival times of a new variant in a structured
+/// population.
+#[derive(Debug, Parser)]
+#[command(name = "demefix", version = crate::provenance::SERVICE_VERSION)]
+pub struct Cli {
+    #[command(subcommand)]
+    command: Command,
+}
+
+#[derive(Debug, Subcommand)]
+enum Command {
+    /// Validate and compute a job; print the result document as JSON on stdout.
+    Run(RunArgs),
+    /// Validate a job without computing it.
+    Validate(ValidateArgs),
+}
+
+#[derive(Debug, Args)]
+struct JobArgs {
+    /// Job document (JSON), or `-` to read it from standard input.
+    spec: String,
+    /// Largest state space of the exact method (`auto` picks ensembles above it).
+    #[arg(long, value_name = "N")]
+    max_states: Option<u64>,
+}
+
+#[derive(Debug, Args)]
+struct RunArgs {
+    #[command(flatten)]
+    job: JobArgs,
+    /// Worker threads (default: the number of CPUs). Results do not depend on it.
+    #[arg(long, value_name = "N", value_parser = clap::value_parser!(u64).range(1..=1024))]
+    threads: Option<u64>,
+    /// No progress bar.
+    #[arg(long)]
+    quiet: bool,
+}
+
+#[derive(Debug, Args)]
+struct ValidateArgs {
+    #[command(flatten)]
+    job: JobArgs,
+}
+
+/// A failure of the command, with its exit code.
+#[derive(Debug)]
+enum Failure {
+    /// The job document is not acceptable: exit 2.
+    Invalid(InvalidJob),
+    /// Anything else: exit 1.
+    Other(String),
+}
+
+impl Failure {
+    fn report(self) -> ExitCode {
+        let mut stderr = std::io::stderr().lock();
+        match self {
+            Failure::Invalid(doc) => {
+                let text = serde_json::to_string_pretty(&doc).unwrap_or_default();
+                let _ = writeln!(stderr, "{text}");
+                ExitCode::from(2)
+            }
+            Failure::Other(message) => {
+                let _ = writeln!(stderr, "demefix: {message}");
+                ExitCode::from(1)
+            }
+        }
+    }
+}
+
+/// Parses the arguments, runs the command and returns the process exit code.
+pub fn main() -> ExitCode {
+    let cli = Cli::parse();
+    let outcome = match cli.command {
+        Command::Run(args) => run(&args),
+        Command::Validate(args) => validate(&args),
+    };
+    match outcome {
+        Ok(()) => ExitCode::SUCCESS,
+        Err(failure) => failure.report(),
+    }
+}
+
+fn read_job(path: &str) -> Result<Vec<u8>, Failure> {
+    if path == "-" {
+        let mut bytes = Vec::new();
+        std::io::stdin()
+            .read_to_end(&mut bytes)
+            .map_err(|e| Failure::Other(format!("cannot read the job from stdin: {e}")))?;
+        Ok(bytes)
+    } else {
+        std::fs::read(path).map_err(|e| Failure::Other(format!("cannot read `{path}`: {e}")))
+    }
+}
+
+fn load(args: &JobArgs) -> Result<(Vec<u8>, ValidatedJob), Failure> {
+    let bytes = read_job(&args.spec)?;
+    let mut exact = ExactConfig::default();
+    if let Some(n) = args.max_states {
+        exact.max_states = n;
+    }
+    let job = spec::parse_bytes(&bytes, &Limits { exact })
+        .map_err(|errors| Failure::Invalid(InvalidJob::new(errors)))?;
+    Ok((bytes, job))
+}
+
+fn method_name(m: ResolvedMethod) -> &'static str {
+    match m {
+        ResolvedMethod::Exact { .. } => "exact",
+        ResolvedMethod::Ensemble => "ensemble",
+        ResolvedMethod::Approximation => "approximation",
+    }
+}
+
+fn print_json(value: &impl serde::Serialize) -> Result<(), Failure> {
+    let text = serde_json::to_string_pretty(value)
+        .map_err(|e| Failure::Other(format!("cannot write the result: {e}")))?;
+    let mut stdout = std::io::stdout().lock();
+    writeln!(stdout, "{text}").map_err(|e| Failure::Other(format!("cannot write stdout: {e}")))
+}
+
+fn validate(args: &ValidateArgs) -> Result<(), Failure> {
+    let (_, job) = load(&args.job)?;
+    let mut warnings = job.warnings().to_vec();
+    if job.needs_seed() {
+        warnings
+            .push("no method.seed was given: `demefix run` will pick one and record it".to_owned());
+    }
+    print_json(&serde_json::json!({
+        "valid": true,
+        "warnings": warnings,
+        "states": job.states(),
+        "method": method_name(job.method()),
+    }))
+}
+
+/// A seed from the operating system's randomness, or from the clock if that is unavailable.
+fn fresh_seed() -> u64 {
+    let mut buf = [0u8; 8];
+    let from_os = std::fs::File::open("/dev/urandom")
+        .and_then(|mut f| f.read_exact(&mut buf))
+        .is_ok();
+    if from_os {
+        return u64::from_le_bytes(buf);
+    }
+    let nanos = std::time::SystemTime::now()
+        .duration_since(std::time::UNIX_EPOCH)
+        .map_or(0, |d| d.as_nanos() as u64);
+    nanos ^ (u64::from(std::process::id()) << 32)
+}
+
+/// Progress of the job's ensembles on an indicatif bar.
+struct Bar(ProgressBar);
+
+impl ProgressObserver for Bar {
+    fn on_progress(&self, done: u64, total: u64) {
+        self.0.set_length(total);
+        self.0.set_position(done);
+    }
+}
+
+fn progress_bar(total: u64, quiet: bool) -> ProgressBar {
+    if quiet || total == 0 || !std::io::stderr().is_terminal() {
+        return ProgressBar::hidden();
+    }
+    let bar = ProgressBar::with_draw_target(Some(total), ProgressDrawTarget::stderr());
+    if let Ok(style) = ProgressStyle::with_template(
+        "{elapsed_precise} [{bar:30}] {pos}/{len} replicates, {eta} left",
+    ) {
+        bar.set_style(style.progress_chars("=> "));
+    }
+    bar
+}
+
+fn run(args: &RunArgs) -> Result<(), Failure> {
+    let (bytes, mut job) = load(&args.job)?;
+    if job.needs_seed() {
+        job.pick_seed(fresh_seed());
+    }
+    let threads = match args.threads {
+        Some(n) => n as usize,
+        None => std::thread::available_parallelism().map_or(1, |n| n.get()),
+    };
+    let pool = rayon::ThreadPoolBuilder::new()
+        .num_threads(threads)
+        .build()
+        .map_err(|e| Failure::Other(format!("cannot start {threads} worker threads: {e}")))?;
+    let bar = Bar(progress_bar(compute::ensemble_total(&job), args.quiet));
+    let cancel = AtomicBool::new(false);
+    let outcome = compute::run(&job, &pool, &bar, &cancel).map_err(|e| match e {
+        ComputeError::Cancelled => Failure::Other("the computation was cancelled".to_owned()),
+        other => Failure::Other(format!("the job could not be computed: {other}")),
+    })?;
+    bar.0.finish_and_clear();
+    let provenance = Provenance::new(&job, &bytes, &outcome.method, threads);
+    let mut warnings = job.warnings().to_vec();
+    warnings.extend(outcome.warnings);
+    print_json(&RunDocument {
+        spec: job.spec(),
+        provenance: &provenance,
+        results: &outcome.results,
+        warnings: &warnings,
+        disclaimer: DISCLAIMER,
+    })
+}

@@ -1,0 +1,301 @@
+//! Unit tests of job validation: defaults, pointers, warnings.
+
+use super::*;
+use serde_json::json;
+
+fn base() -> Value {
+    json!({
+        "population": {"demes": [{"id": "a", "size": 3}, {"id": "b", "size": 4}, {"id": "c", "size": 2}]},
+        "migration": {"orientation": "flows", "matrix": [[0, 4, 1], [3, 0, 2], [1, 1, 0]]},
+        "dynamics": {"rule": "death_birth"},
+        "selection": {"s": 0.1},
+        "method": {"seed": 7}
+    })
+}
+
+fn ok(v: &Value) -> ValidatedJob {
+    validate(v, &Limits::default()).unwrap_or_else(|p| panic!("{p:#?}"))
+}
+
+fn problems(v: &Value) -> Vec<Problem> {
+    match validate(v, &Limits::default()) {
+        Ok(_) => panic!("expected problems"),
+        Err(p) => p,
+    }
+}
+
+fn pointers(v: &Value) -> Vec<String> {
+    problems(v).into_iter().map(|p| p.pointer).collect()
+}
+
+#[test]
+fn defaults_are_filled_in_and_written_out() {
+    let job = ok(&base());
+    let spec = serde_json::to_value(job.spec()).unwrap();
+    assert_eq!(spec["selection"], json!({"s": [0.1], "scope": "deme"}));
+    assert_eq!(spec["start"], json!(["uniform"]));
+    assert_eq!(spec["migration"]["self_flows"], "keep");
+    assert_eq!(spec["method"]["kind"], "auto");
+    assert_eq!(spec["method"]["replicates"], DEFAULT_REPLICATES);
+    assert_eq!(spec["method"]["chunk_size"], DEFAULT_CHUNK_SIZE);
+    assert_eq!(spec["method"]["max_generations"], DEFAULT_MAX_GENERATIONS);
+    assert_eq!(
+        spec["outputs"],
+        json!({"times": true, "arrival_fractions": [], "sensitivity": false})
+    );
+    assert_eq!(job.method(), ResolvedMethod::Exact { states: 4 * 5 * 3 });
+    assert_eq!(job.states(), Some(60));
+}
+
+#[test]
+fn the_normalised_spec_validates_to_itself() {
+    let mut v = base();
+    v["migration"] =
+        json!({"orientation": "flows", "matrix_csv": "a,b,c\n0,4,1\n3,-0.0,2\n1,1,0\n"});
+    v["start"] = json!(["b", "at_birth"]);
+    let first = ok(&v);
+    let again = ok(&serde_json::to_value(first.spec()).unwrap());
+    assert_eq!(first.spec(), again.spec());
+    assert_eq!(first.spec().migration.matrix[1], vec![3.0, 0.0, 2.0]);
+    assert!(first.spec().migration.matrix[1][1].is_sign_positive());
+}
+
+#[test]
+fn unknown_fields_missing_fields_and_wrong_types_are_all_reported() {
+    let v = json!({
+        "population": {"demes": [{"id": "a", "size": "3"}, {"id": "b"}]},
+        "migration": {"orientation": "sideways", "matrix": [[0, 1], [1, "x"]]},
+        "dynamics": {"rule": "death_birth", "colour": 1},
+        "selection": {"s": [0.1, -1.5]},
+        "start": ["a", 3],
+        "methd": {}
+    });
+    let got = pointers(&v);
+    for want in [
+        "/methd",
+        "/population/demes/0/size",
+        "/population/demes/1/size",
+        "/dynamics/colour",
+        "/migration/orientation",
+        "/migration/matrix/1/1",
+        "/selection/s/1",
+        "/start/1",
+    ] {
+        assert!(
+            got.contains(&want.to_owned()),
+            "{want} missing from {got:?}"
+        );
+    }
+}
+
+#[test]
+fn matrix_shape_and_entries_are_reported_per_entry() {
+    let mut v = base();
+    v["migration"]["matrix"] = json!([[0, -4, 1], [3, 0], [1, 1, 0], [1, 1, 1]]);
+    let got = pointers(&v);
+    assert!(got.contains(&"/migration/matrix".to_owned()), "{got:?}");
+    assert!(got.contains(&"/migration/matrix/1".to_owned()), "{got:?}");
+    assert!(got.contains(&"/migration/matrix/0/1".to_owned()), "{got:?}");
+}
+
+#[test]
+fn a_zero_row_is_found_next_to_a_negative_entry() {
+    let mut v = base();
+    v["dynamics"]["rule"] = json!("birth_death");
+    v["migration"]["matrix"] = json!([[0, -4, 1], [0, 0, 0], [1, 1, 0]]);
+    let got = pointers(&v);
+    assert_eq!(got, vec!["/migration/matrix/0/1", "/migration/matrix/1"]);
+}
+
+#[test]
+fn a_zero_column_of_flows_is_an_error_for_death_birth_only() {
+    let mut v = base();
+    // nothing moves into deme c
+    v["migration"]["matrix"] = json!([[1, 4, 0], [3, 0, 0], [1, 1, 0]]);
+    let p = problems(&v);
+    assert_eq!(p.len(), 1);
+    assert_eq!(p[0].pointer, "/migration/matrix");
+    assert!(p[0].detail.contains("deme `c`"), "{}", p[0].detail);
+    v["dynamics"]["rule"] = json!("birth_death");
+    // for birth-death the flows rows matter: every row has mass, but c is never reached
+    let job = ok(&v);
+    assert!(
+        job.warnings()
+            .iter()
+            .any(|w| w.contains("never reaches `c`")),
+        "{:?}",
+        job.warnings()
+    );
+}
+
+#[test]
+fn non_finite_csv_cells_are_reported_with_their_line() {
+    let mut v = base();
+    v["migration"] = json!({"orientation": "flows", "matrix_csv": "0,4,1\n3,NaN,2\n1,inf,0"});
+    let p = problems(&v);
+    assert_eq!(p.len(), 2, "{p:?}");
+    assert!(p.iter().all(|p| p.pointer == "/migration/matrix_csv"));
+    assert!(
+        p[0].detail.starts_with("line 2, field 2"),
+        "{}",
+        p[0].detail
+    );
+    assert!(
+        p[1].detail.starts_with("line 3, field 2"),
+        "{}",
+        p[1].detail
+    );
+}
+
+#[test]
+fn ids_must_be_unique_well_formed_and_not_start_keywords() {
+    let mut v = base();
+    v["population"]["demes"] = json!([
+        {"id": "a", "size": 3}, {"id": "a", "size": 4}, {"id": "bad id", "size": 2}, {"id": "uniform", "size": 2}
+    ]);
+    v["migration"]["matrix"] = json!([[0, 1, 1, 1], [1, 0, 1, 1], [1, 1, 0, 1], [1, 1, 1, 0]]);
+    let got = pointers(&v);
+    assert_eq!(
+        got,
+        vec![
+            "/population/demes/1/id",
+            "/population/demes/2/id",
+            "/population/demes/3/id"
+        ]
+    );
+}
+
+#[test]
+fn unknown_and_repeated_starts_are_reported() {
+    let mut v = base();
+    v["start"] = json!(["a", "zed", "a", "uniform"]);
+    assert_eq!(pointers(&v), vec!["/start/1", "/start/2"]);
+}
+
+#[test]
+fn selection_at_or_below_minus_one_is_rejected() {
+    let mut v = base();
+    v["selection"]["s"] = json!(-1);
+    assert_eq!(pointers(&v), vec!["/selection/s"]);
+    v["selection"]["s"] = json!([0.0, -1.0, 0.0]);
+    assert_eq!(pointers(&v), vec!["/selection/s/1", "/selection/s/2"]);
+}
+
+#[test]
+fn deme_scope_on_single_individual_demes_points_to_neighbourhood() {
+    let mut v = base();
+    v["population"]["demes"] =
+        json!([{"id": "a", "size": 1}, {"id": "b", "size": 1}, {"id": "c", "size": 1}]);
+    let p = problems(&v);
+    assert_eq!(p.len(), 1);
+    assert_eq!(p[0].pointer, "/selection/scope");
+    assert!(p[0].detail.contains("neighbourhood"));
+    v["selection"]["scope"] = json!("neighbourhood");
+    ok(&v);
+    v["selection"]["scope"] = json!("deme");
+    v["dynamics"]["rule"] = json!("birth_death");
+    ok(&v);
+}
+
+#[test]
+fn an_exact_job_too_large_is_rejected_at_method_kind_and_auto_goes_ensemble() {
+    let mut v = base();
+    v["population"]["demes"] =
+        json!([{"id": "a", "size": 300}, {"id": "b", "size": 400}, {"id": "c", "size": 200}]);
+    v["method"]["kind"] = json!("exact");
+    let p = problems(&v);
+    assert_eq!(p.len(), 1);
+    assert_eq!(p[0].pointer, "/method/kind");
+    v["method"]["kind"] = json!("auto");
+    assert_eq!(ok(&v).method(), ResolvedMethod::Ensemble);
+}
+
+#[test]
+fn rows_given_as_weights_are_rescaled_with_a_warning() {
+    let mut v = base();
+    v["migration"] = json!({"orientation": "recruitment", "matrix": [[0.5, 0.5, 0], [2, 0, 2], [0.2, 0.3, 0.5]]});
+    let job = ok(&v);
+    assert!(job.warnings()[0].contains("`b`"), "{:?}", job.warnings());
+    assert!(!job.warnings()[0].contains("`a`"));
+}
+
+#[test]
+fn a_split_migration_graph_is_accepted_with_warnings_naming_the_unreachable_demes() {
+    let mut v = base();
+    v["population"]["demes"] = json!([{"id": "a", "size": 3}, {"id": "b", "size": 4}]);
+    v["migration"] = json!({"orientation": "recruitment", "matrix": [[1, 0], [0, 1]]});
+    let job = ok(&v);
+    let w = job.warnings().join("\n");
+    assert!(w.contains("splits the population"), "{w}");
+    assert!(w.contains("never reaches `b`"), "{w}");
+    assert!(w.contains("never reaches `a`"), "{w}");
+}
+
+#[test]
+fn matrix_ref_is_left_to_the_service() {
+    let mut v = base();
+    v["migration"] =
+        json!({"orientation": "flows", "matrix_ref": format!("sha256:{}", "ab".repeat(32))});
+    let p = problems(&v);
+    assert_eq!(p[0].pointer, "/migration/matrix_ref");
+    assert!(p[0].detail.contains("service"));
+}
+
+#[test]
+fn a_missing_seed_is_picked_once_and_warned_about() {
+    let mut v = base();
+    v["method"] = json!({"kind": "ensemble"});
+    let mut job = ok(&v);
+    assert!(job.needs_seed());
+    assert!(job.ensemble_config().is_none());
+    job.pick_seed(u64::MAX);
+    assert!(!job.needs_seed());
+    assert_eq!(job.spec().method.seed, Some(u64::MAX % MAX_EXACT_INTEGER));
+    assert_eq!(job.warnings().len(), 1);
+    job.pick_seed(3);
+    assert_eq!(job.spec().method.seed, Some(u64::MAX % MAX_EXACT_INTEGER));
+}
+
+#[test]
+fn birth_death_with_neighbourhood_scope_warns_that_scope_does_not_apply() {
+    let mut v = base();
+    v["dynamics"]["rule"] = json!("birth_death");
+    v["selection"]["scope"] = json!("neighbourhood");
+    let job = ok(&v);
+    assert!(job.warnings().iter().any(|w| w.contains("does not apply")));
+}
+
+#[test]
+fn arrival_fractions_must_lie_in_the_unit_interval() {
+    let mut v = base();
+    v["outputs"] = json!({"arrival_fractions": [0.5, 0, 1.5, 0.5, 1]});
+    assert_eq!(
+        pointers(&v),
+        vec![
+            "/outputs/arrival_fractions/1",
+            "/outputs/arrival_fractions/2",
+            "/outputs/arrival_fractions/3"
+        ]
+    );
+}
+
+#[test]
+fn method_settings_are_range_checked() {
+    let mut v = base();
+    v["method"] = json!({"replicates": 0, "chunk_size": 2.5, "target_half_width": 0.7, "seed": -1});
+    assert_eq!(
+        pointers(&v),
+        vec![
+            "/method/seed",
+            "/method/replicates",
+            "/method/chunk_size",
+            "/method/target_half_width"
+        ]
+    );
+}
+
+#[test]
+fn invalid_json_text_is_a_problem_at_the_root() {
+    let p = parse_bytes(b"{\"population\": ", &Limits::default()).unwrap_err();
+    assert_eq!(p[0].pointer, "");
+}

@@ -1,0 +1,416 @@
+//! The `demefix` binary end to end: results, exit codes, problem documents, determinism.
+
+use serde_json::{json, Value};
+use std::io::Write;
+use std::path::PathBuf;
+use std::process::{Command, Output, Stdio};
+
+fn example(name: &str) -> PathBuf {
+    PathBuf::from(env!("CARGO_MANIFEST_DIR"))
+        .join("examples")
+        .join(name)
+}
+
+/// Runs the binary with `args`, feeding `stdin` when given.
+fn demefix(args: &[&str], stdin: Option<&[u8]>) -> Output {
+    let mut child = Command::new(env!("CARGO_BIN_EXE_demefix"))
+        .args(args)
+        .stdin(if stdin.is_some() {
+            Stdio::piped()
+        } else {
+            Stdio::null()
+        })
+        .stdout(Stdio::piped())
+        .stderr(Stdio::piped())
+        .spawn()
+        .expect("the binary starts");
+    if let Some(bytes) = stdin {
+        child
+            .stdin
+            .take()
+            .unwrap()
+            .write_all(bytes)
+            .expect("stdin accepts the job");
+    }
+    child.wait_with_output().expect("the binary finishes")
+}
+
+fn run_stdin(job: &Value, extra: &[&str]) -> Output {
+    let mut args = vec!["run", "-", "--quiet"];
+    args.extend_from_slice(extra);
+    demefix(&args, Some(job.to_string().as_bytes()))
+}
+
+fn stdout_json(out: &Output) -> Value {
+    assert!(
+        out.status.success(),
+        "exit {:?}, stderr: {}",
+        out.status.code(),
+        String::from_utf8_lossy(&out.stderr)
+    );
+    serde_json::from_slice(&out.stdout).expect("stdout is JSON")
+}
+
+/// A small valid job: three demes, exact by size.
+fn small_job() -> Value {
+    json!({
+        "population": {"demes": [{"id": "a", "size": 3}, {"id": "b", "size": 4}, {"id": "c", "size": 2}]},
+        "migration": {"orientation": "flows", "matrix": [[0, 4, 1], [3, 0, 2], [1, 1, 0]]},
+        "dynamics": {"rule": "death_birth"},
+        "selection": {"s": [0.1]},
+        "start": ["a", "uniform"],
+        "method": {"kind": "auto", "seed": 11}
+    })
+}
+
+/// A small ensemble job that runs in well under a second.
+fn ensemble_job() -> Value {
+    json!({
+        "population": {"demes": [{"id": "x", "size": 30}, {"id": "y", "size": 20}]},
+        "migration": {"orientation": "dispersal", "matrix": [[0.9, 0.1], [0.2, 0.8]]},
+        "dynamics": {"rule": "birth_death", "generation_days": 2.0},
+        "selection": {"s": [0.0, 0.2]},
+        "start": ["y", "uniform"],
+        "method": {"kind": "ensemble", "seed": 5, "replicates": 1200, "chunk_size": 200},
+        "outputs": {"arrival_fractions": [0.5, 1]}
+    })
+}
+
+#[test]
+fn the_demo_example_gives_a_result_for_every_s_and_start() {
+    let path = example("river-valley.json");
+    let out = demefix(&["run", path.to_str().unwrap(), "--quiet"], None);
+    let doc = stdout_json(&out);
+    let spec = &doc["spec"];
+    let sweep = spec["selection"]["s"].as_array().unwrap();
+    let starts = spec["start"].as_array().unwrap();
+    let results = doc["results"].as_array().unwrap();
+    assert_eq!(results.len(), sweep.len() * starts.len());
+    let mut k = 0;
+    for s in sweep {
+        for start in starts {
+            let r = &results[k];
+            assert_eq!(&r["s"], s);
+            assert_eq!(&r["start"], start);
+            assert_eq!(r["method"], "exact");
+            let rho = r["fixation_probability"].as_f64().unwrap();
+            assert!((0.0..=1.0).contains(&rho), "{r}");
+            assert!(r.get("ci95").is_none(), "exact results carry no interval");
+            let wm = r["well_mixed_fixation_probability"].as_f64().unwrap();
+            let ratio = r["ratio_to_well_mixed"].as_f64().unwrap();
+            assert!((ratio - rho / wm).abs() <= 1e-12 * ratio.abs());
+            let g = r["mean_fixation_generations"].as_f64().unwrap();
+            let d = r["mean_fixation_days"].as_f64().unwrap();
+            assert!((d - 3.5 * g).abs() <= 1e-9 * d, "days twin of {g}: {d}");
+            k += 1;
+        }
+    }
+    let p = &doc["provenance"];
+    for key in [
+        "request_sha256",
+        "spec_sha256",
+        "matrix_sha256",
+        "normalised_matrix_sha256",
+    ] {
+        assert_eq!(p[key].as_str().unwrap().len(), 64, "{key}");
+    }
+    assert_eq!(p["method"], "exact");
+    assert!(doc["disclaimer"]
+        .as_str()
+        .unwrap()
+        .contains("public-health authorities"));
+}
+
+#[test]
+fn the_ensemble_example_goes_ensemble_under_auto() {
+    let path = example("plateau-towns-ensemble.json");
+    let out = demefix(&["validate", path.to_str().unwrap()], None);
+    let v = stdout_json(&out);
+    assert_eq!(v["valid"], true);
+    assert_eq!(v["method"], "ensemble");
+}
+
+/// Strips the three provenance lines allowed to differ between runs.
+fn without_run_specific_lines(stdout: &[u8]) -> String {
+    String::from_utf8_lossy(stdout)
+        .lines()
+        .filter(|l| {
+            let l = l.trim_start();
+            !(l.starts_with("\"threads\"")
+                || l.starts_with("\"computed_at\"")
+                || l.starts_with("\"host\""))
+        })
+        .collect::<Vec<_>>()
+        .join("\n")
+}
+
+#[test]
+fn the_thread_count_does_not_change_ensemble_results() {
+    let job = ensemble_job();
+    let one = run_stdin(&job, &["--threads", "1"]);
+    let two = run_stdin(&job, &["--threads", "2"]);
+    let (a, b) = (stdout_json(&one), stdout_json(&two));
+    assert_eq!(a["provenance"]["threads"], 1);
+    assert_eq!(b["provenance"]["threads"], 2);
+    assert_eq!(
+        serde_json::to_string(&a["results"]).unwrap(),
+        serde_json::to_string(&b["results"]).unwrap()
+    );
+    assert_eq!(
+        without_run_specific_lines(&one.stdout),
+        without_run_specific_lines(&two.stdout)
+    );
+    let r = &a["results"][0];
+    assert_eq!(r["method"], "ensemble");
+    assert_eq!(r["replicates"], 1200);
+    let counted = r["fixed"].as_u64().unwrap() + r["lost"].as_u64().unwrap();
+    assert_eq!(counted + r["unresolved"].as_u64().unwrap(), 1200);
+    assert!(r["arrival_generations"]["x"].get("0.5").is_some(), "{r}");
+    assert!(r["arrival_days"]["x"].get("1").is_some(), "{r}");
+}
+
+#[test]
+fn the_thread_count_does_not_change_exact_results() {
+    let job = small_job();
+    let a = stdout_json(&run_stdin(&job, &["--threads", "1"]));
+    let b = stdout_json(&run_stdin(&job, &["--threads", "2"]));
+    assert_eq!(
+        serde_json::to_string(&a["results"]).unwrap(),
+        serde_json::to_string(&b["results"]).unwrap()
+    );
+}
+
+#[test]
+fn a_job_is_read_from_stdin_with_a_dash_and_hashed_as_sent() {
+    let text = small_job().to_string();
+    let out = demefix(&["run", "-", "--quiet"], Some(text.as_bytes()));
+    let doc = stdout_json(&out);
+    assert_eq!(doc["results"].as_array().unwrap().len(), 2);
+    // The request hash covers the bytes exactly as sent.
+    let mut spaced = text.clone();
+    spaced.push('\n');
+    let again = stdout_json(&demefix(&["run", "-", "--quiet"], Some(spaced.as_bytes())));
+    assert_ne!(
+        doc["provenance"]["request_sha256"],
+        again["provenance"]["request_sha256"]
+    );
+    assert_eq!(
+        doc["provenance"]["spec_sha256"],
+        again["provenance"]["spec_sha256"]
+    );
+}
+
+#[test]
+fn a_missing_seed_is_picked_recorded_and_warned_about() {
+    let mut job = ensemble_job();
+    job["method"] = json!({"kind": "ensemble", "replicates": 200, "chunk_size": 100});
+    let doc = stdout_json(&run_stdin(&job, &[]));
+    let seed = doc["spec"]["method"]["seed"]
+        .as_u64()
+        .expect("a seed was recorded");
+    assert_eq!(doc["provenance"]["seed"].as_u64(), Some(seed));
+    let warnings = doc["warnings"].as_array().unwrap();
+    assert!(warnings
+        .iter()
+        .any(|w| w.as_str().unwrap().contains(&seed.to_string())));
+}
+
+#[test]
+fn validate_prints_states_and_warnings() {
+    let mut job = small_job();
+    job["migration"] = json!({"orientation": "recruitment", "matrix": [[1, 1, 0], [0.5, 0.5, 0], [0.2, 0.3, 0.5]]});
+    let v = stdout_json(&demefix(
+        &["validate", "-"],
+        Some(job.to_string().as_bytes()),
+    ));
+    assert_eq!(v["valid"], true);
+    assert_eq!(v["states"], 4 * 5 * 3);
+    let warnings = v["warnings"].as_array().unwrap();
+    // row `a` sums to 2 (weights); deme `c` never sends a lineage anywhere
+    assert!(warnings.iter().any(|w| w.as_str().unwrap().contains("`a`")));
+    assert!(warnings.iter().any(|w| w
+        .as_str()
+        .unwrap()
+        .contains("fixation is impossible from `c`")));
+}
+
+/// The problem document of a rejected job, checking exit code 2 and the RFC 9457 members.
+fn problems(job: &[u8]) -> Vec<(String, String)> {
+    let out = demefix(&["run", "-", "--quiet"], Some(job));
+    assert_eq!(
+        out.status.code(),
+        Some(2),
+        "stdout: {}",
+        String::from_utf8_lossy(&out.stdout)
+    );
+    assert!(out.stdout.is_empty());
+    let doc: Value = serde_json::from_slice(&out.stderr).expect("stderr is a problem document");
+    assert_eq!(doc["title"], "Invalid job");
+    assert_eq!(doc["status"], 422);
+    assert!(doc["type"].is_string());
+    doc["errors"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|e| {
+            (
+                e["pointer"].as_str().unwrap().to_owned(),
+                e["detail"].as_str().unwrap().to_owned(),
+            )
+        })
+        .collect()
+}
+
+#[test]
+fn every_malformed_job_of_the_table_exits_2_with_its_pointers() {
+    type Edit = fn(&mut Value);
+    let table: &[(&str, Edit, &[&str], &str)] = &[
+        (
+            "NaN via csv",
+            |j| {
+                j["migration"] =
+                    json!({"orientation": "flows", "matrix_csv": "a,b,c\n0,4,1\n3,0,NaN\n1,1,0\n"})
+            },
+            &["/migration/matrix_csv"],
+            "line 3, field 3",
+        ),
+        (
+            "negative entry",
+            |j| j["migration"]["matrix"][1][2] = json!(-2),
+            &["/migration/matrix/1/2"],
+            "negative",
+        ),
+        (
+            "non-square matrix",
+            |j| j["migration"]["matrix"] = json!([[0, 4, 1], [3, 0], [1, 1, 0]]),
+            &["/migration/matrix/1"],
+            "2 entries",
+        ),
+        (
+            "too few rows",
+            |j| j["migration"]["matrix"] = json!([[0, 4, 1], [3, 0, 2]]),
+            &["/migration/matrix"],
+            "2 rows",
+        ),
+        (
+            "empty row",
+            |j| j["migration"]["matrix"][2] = json!([]),
+            &["/migration/matrix/2"],
+            "0 entries",
+        ),
+        (
+            "row of zeros",
+            |j| {
+                j["dynamics"]["rule"] = json!("birth_death");
+                j["migration"]["matrix"][2] = json!([0, 0, 0]);
+            },
+            &["/migration/matrix/2"],
+            "all zeros",
+        ),
+        (
+            "unknown start id",
+            |j| j["start"] = json!(["a", "nowhere"]),
+            &["/start/1"],
+            "nowhere",
+        ),
+        (
+            "duplicate deme id",
+            |j| j["population"]["demes"][1]["id"] = json!("a"),
+            &["/population/demes/1/id"],
+            "duplicate",
+        ),
+        (
+            "s at or below -1",
+            |j| j["selection"]["s"] = json!([-1.0, 0.1]),
+            &["/selection/s/0"],
+            "greater than -1",
+        ),
+        (
+            "too many states for exact",
+            |j| {
+                j["method"]["kind"] = json!("exact");
+                j["population"]["demes"][0]["size"] = json!(2000);
+                j["population"]["demes"][1]["size"] = json!(2000);
+            },
+            &["/method/kind"],
+            "count vectors",
+        ),
+        (
+            "deme scope with all sizes 1",
+            |j| {
+                for k in 0..3 {
+                    j["population"]["demes"][k]["size"] = json!(1);
+                }
+            },
+            &["/selection/scope"],
+            "neighbourhood",
+        ),
+        (
+            "size of the wrong type",
+            |j| j["population"]["demes"][2]["size"] = json!("2"),
+            &["/population/demes/2/size"],
+            "whole number",
+        ),
+        (
+            "unknown field",
+            |j| j["method"]["replicate"] = json!(10),
+            &["/method/replicate"],
+            "unknown field",
+        ),
+    ];
+    for (name, edit, want, word) in table {
+        let mut job = small_job();
+        edit(&mut job);
+        let got = problems(job.to_string().as_bytes());
+        let pointers: Vec<&str> = got.iter().map(|(p, _)| p.as_str()).collect();
+        assert_eq!(&pointers, want, "{name}: {got:?}");
+        assert!(
+            got.iter().any(|(_, d)| d.contains(word)),
+            "{name}: no detail mentions `{word}`: {got:?}"
+        );
+    }
+}
+
+#[test]
+fn every_problem_of_a_job_is_reported_at_once() {
+    let job = json!({
+        "population": {"demes": [{"id": "a", "size": 0}, {"id": "a", "size": 2}, {"id": "b c", "size": 2.5}]},
+        "migration": {"orientation": "flows", "matrix": [[0, -1, 1], [1, 0, 1], [1, 1]]},
+        "dynamics": {"rule": "voter"},
+        "selection": {"s": [0.1, -3]},
+        "start": ["z"],
+        "method": {"kind": "exact", "replicates": 0},
+        "colour": "blue"
+    });
+    let got = problems(job.to_string().as_bytes());
+    let pointers: Vec<&str> = got.iter().map(|(p, _)| p.as_str()).collect();
+    for want in [
+        "/colour",
+        "/population/demes/0/size",
+        "/population/demes/1/id",
+        "/population/demes/2/id",
+        "/population/demes/2/size",
+        "/dynamics/rule",
+        "/selection/s/1",
+        "/start/0",
+        "/method/replicates",
+        "/migration/matrix/2",
+        "/migration/matrix/0/1",
+    ] {
+        assert!(pointers.contains(&want), "{want} missing from {pointers:?}");
+    }
+}
+
+#[test]
+fn text_that_is_not_json_exits_2_at_the_root_pointer() {
+    let got = problems(b"{\"population\": [1, 2");
+    assert_eq!(got.len(), 1);
+    assert_eq!(got[0].0, "");
+}
+
+#[test]
+fn a_missing_file_exits_1_with_a_message() {
+    let out = demefix(&["run", "/nonexistent/job.json"], None);
+    assert_eq!(out.status.code(), Some(1));
+    assert!(String::from_utf8_lossy(&out.stderr).contains("cannot read"));
+}

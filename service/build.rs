@@ -7,7 +7,7 @@ use std::path::Path;
 use std::process::Command;
 
 fn main() {
-    println!("cargo:rerun-if-changed=build.rs");
+    println!("cargo:rerun-if-changed=service/build.rs");
     let git = Path::new(".git");
     if git.is_dir() {
         println!("cargo:rerun-if-changed=.git/HEAD");

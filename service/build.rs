@@ -8,6 +8,7 @@ use std::process::Command;
 
 fn main() {
     println!("cargo:rerun-if-changed=service/build.rs");
+    println!("cargo:rerun-if-changed=migrations");
     let git = Path::new(".git");
     if git.is_dir() {
         println!("cargo:rerun-if-changed=.git/HEAD");

@@ -1,10 +1,11 @@
-//! The local command line: `demefix run` and `demefix validate`.
+//! The local command line: `demefix run`, `demefix validate` and `demefix serve`.
 //!
 //! This module owns everything at the process edge: reading the job (a file or `-` for
 //! stdin), the exit codes (0 success, 2 invalid job with the RFC 9457 problem document on
 //! stderr, 1 any other failure with a message on stderr), picking a seed when a job needs one
 //! and has none, the thread pool, and the progress bar on stderr. Results go to stdout as
-//! pretty JSON.
+//! pretty JSON. `serve` reads its configuration from the environment ([`crate::config`])
+//! and hands over to [`crate::server::serve`] on a multi-threaded tokio runtime.
 
 use crate::compute::{self, ComputeError};
 use crate::document::{RunDocument, DISCLAIMER};
@@ -34,6 +35,9 @@ enum Command {
     Run(RunArgs),
     /// Validate a job without computing it.
     Validate(ValidateArgs),
+    /// Run the HTTP analysis service (configured by DEMEFIX_* environment variables; see
+    /// DEVELOPERS.md).
+    Serve,
 }
 
 #[derive(Debug, Args)]
@@ -95,11 +99,25 @@ pub fn main() -> ExitCode {
     let outcome = match cli.command {
         Command::Run(args) => run(&args),
         Command::Validate(args) => validate(&args),
+        Command::Serve => serve(),
     };
     match outcome {
         Ok(()) => ExitCode::SUCCESS,
         Err(failure) => failure.report(),
     }
+}
+
+fn serve() -> Result<(), Failure> {
+    let config = crate::config::Config::from_env()
+        .map_err(|e| Failure::Other(format!("bad configuration: {e}")))?;
+    crate::server::init_logging(config.log_format);
+    let runtime = tokio::runtime::Builder::new_multi_thread()
+        .enable_all()
+        .build()
+        .map_err(|e| Failure::Other(format!("cannot start the async runtime: {e}")))?;
+    runtime
+        .block_on(crate::server::serve(config))
+        .map_err(|e| Failure::Other(e.to_string()))
 }
 
 fn read_job(path: &str) -> Result<Vec<u8>, Failure> {

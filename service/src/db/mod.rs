@@ -1,0 +1,407 @@
+//! The job store: SQLite through sqlx. The only module that writes SQL.
+//!
+//! This module owns the connection settings that make the service's promises hold
+//! (`journal_mode=WAL` set when the store opens, `synchronous=FULL`, a `busy_timeout`,
+//! `foreign_keys=ON`), the split into one writer connection and a pool of read-only readers,
+//! the migrations (`migrations/` at the package root, applied on open), and every statement:
+//! submission with its idempotency check, the queue (claim, heartbeat, checkpoint,
+//! completion fenced by the lease token, requeue on shutdown, rescue of expired leases by
+//! the claim itself), cancellation, and the read side (one run, a page of runs).
+//!
+//! Every read-then-write transaction starts with `BEGIN IMMEDIATE`, so it takes the write
+//! lock before reading and never fails half-way with `SQLITE_BUSY_SNAPSHOT`. Single-statement
+//! writes (claim, heartbeat, completion) are their own transactions. No transaction is held
+//! across a computation. Statements are checked at run time (`sqlx::query`), so building
+//! needs no database.
+
+mod rows;
+
+pub use rows::{Claim, RunRecord};
+
+use crate::domain::{Finish, ListQuery, NewRun, RunStatus};
+use rows::{ClaimRow, RunRow, RUN_COLUMNS};
+use sqlx::sqlite::{
+    SqliteConnectOptions, SqliteJournalMode, SqlitePool, SqlitePoolOptions, SqliteSynchronous,
+};
+use sqlx::Row;
+use std::path::Path;
+use std::time::Duration;
+
+/// How long a connection waits for another process's write lock before giving up.
+const BUSY_TIMEOUT: Duration = Duration::from_secs(10);
+/// How long a request waits for the single writer connection.
+const WRITER_ACQUIRE_TIMEOUT: Duration = Duration::from_secs(30);
+/// Read-only connections.
+const READERS: u32 = 4;
+
+/// A failure of the store.
+#[derive(Debug, thiserror::Error)]
+pub enum DbError {
+    /// SQLite or the driver failed.
+    #[error("database: {0}")]
+    Sqlx(#[from] sqlx::Error),
+    /// A migration could not be applied.
+    #[error("migration: {0}")]
+    Migrate(#[from] sqlx::migrate::MigrateError),
+    /// A stored value is not what the schema promises.
+    #[error("stored run {id} is corrupt: {what}")]
+    Corrupt {
+        /// Run id.
+        id: String,
+        /// What could not be read.
+        what: String,
+    },
+}
+
+/// What a submission did.
+#[derive(Debug)]
+pub enum Submitted {
+    /// A new run was stored.
+    Created(RunRecord),
+    /// The idempotency key was used before with the same body: that run.
+    Existing(RunRecord),
+    /// The idempotency key was used before with another body (the id of that run).
+    KeyReused(String),
+}
+
+/// What a cancellation request did.
+#[derive(Debug)]
+pub enum Cancelled {
+    /// No such run.
+    NotFound,
+    /// The run after the request (cancelled at once if queued, marked if running).
+    Run(RunRecord),
+    /// The run had already succeeded or failed.
+    AlreadyFinished(RunRecord),
+}
+
+/// The store: one writer connection and read-only readers on the same file.
+#[derive(Debug, Clone)]
+pub struct Store {
+    writer: SqlitePool,
+    reader: SqlitePool,
+}
+
+fn now_text() -> String {
+    chrono::Utc::now().to_rfc3339_opts(chrono::SecondsFormat::Millis, true)
+}
+
+fn now_ms() -> i64 {
+    chrono::Utc::now().timestamp_millis()
+}
+
+fn millis(d: Duration) -> i64 {
+    i64::try_from(d.as_millis()).unwrap_or(i64::MAX)
+}
+
+impl Store {
+    /// Opens (creating if missing) and migrates the database at `path`.
+    pub async fn open(path: &Path) -> Result<Self, DbError> {
+        let base = SqliteConnectOptions::new()
+            .filename(path)
+            .busy_timeout(BUSY_TIMEOUT)
+            .foreign_keys(true)
+            .synchronous(SqliteSynchronous::Full);
+        let writer = SqlitePoolOptions::new()
+            .max_connections(1)
+            .min_connections(1)
+            .acquire_timeout(WRITER_ACQUIRE_TIMEOUT)
+            .idle_timeout(None)
+            .max_lifetime(None)
+            .connect_with(
+                base.clone()
+                    .create_if_missing(true)
+                    .journal_mode(SqliteJournalMode::Wal),
+            )
+            .await?;
+        sqlx::migrate!("./migrations").run(&writer).await?;
+        let reader = SqlitePoolOptions::new()
+            .max_connections(READERS)
+            .connect_with(base.read_only(true))
+            .await?;
+        Ok(Self { writer, reader })
+    }
+
+    /// Closes both pools (waits for connections in use to be returned).
+    pub async fn close(&self) {
+        self.writer.close().await;
+        self.reader.close().await;
+    }
+
+    /// Stores `new` (and its matrix, once per hash), honouring its idempotency key.
+    pub async fn submit(&self, new: &NewRun) -> Result<Submitted, DbError> {
+        let mut tx = self.writer.begin_with("BEGIN IMMEDIATE").await?;
+        if let Some(key) = &new.idempotency_key {
+            let earlier =
+                sqlx::query("SELECT id, request_sha256 FROM runs WHERE idempotency_key = ?")
+                    .bind(key)
+                    .fetch_optional(&mut *tx)
+                    .await?;
+            if let Some(row) = earlier {
+                let id: String = row.try_get("id")?;
+                let hash: String = row.try_get("request_sha256")?;
+                tx.rollback().await?;
+                if hash != new.request_sha256 {
+                    return Ok(Submitted::KeyReused(id));
+                }
+                let run = self.run(&id).await?.ok_or_else(|| DbError::Corrupt {
+                    id: id.clone(),
+                    what: "vanished after its idempotency key was found".to_owned(),
+                })?;
+                return Ok(Submitted::Existing(run));
+            }
+        }
+        let now = now_text();
+        sqlx::query(
+            "INSERT INTO matrices (matrix_sha256, demes, entries, created_at) VALUES (?, ?, ?, ?)
+             ON CONFLICT (matrix_sha256) DO NOTHING",
+        )
+        .bind(&new.matrix_sha256)
+        .bind(new.demes as i64)
+        .bind(&new.matrix_json)
+        .bind(&now)
+        .execute(&mut *tx)
+        .await?;
+        sqlx::query(
+            "INSERT INTO runs (id, status, series, spec, spec_sha256, request, request_sha256,
+                               matrix_sha256, warnings, progress_total, submitted_at,
+                               idempotency_key)
+             VALUES (?, 'queued', ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+        )
+        .bind(&new.id)
+        .bind(&new.series)
+        .bind(&new.spec_json)
+        .bind(&new.spec_sha256)
+        .bind(&new.request)
+        .bind(&new.request_sha256)
+        .bind(&new.matrix_sha256)
+        .bind(serde_json::to_string(&new.warnings).unwrap_or_else(|_| "[]".to_owned()))
+        .bind(new.total as i64)
+        .bind(&now)
+        .bind(&new.idempotency_key)
+        .execute(&mut *tx)
+        .await?;
+        tx.commit().await?;
+        let run = self.run(&new.id).await?.ok_or_else(|| DbError::Corrupt {
+            id: new.id.clone(),
+            what: "not found right after it was stored".to_owned(),
+        })?;
+        Ok(Submitted::Created(run))
+    }
+
+    /// The run `id`, if it exists.
+    pub async fn run(&self, id: &str) -> Result<Option<RunRecord>, DbError> {
+        let sql = format!("SELECT {RUN_COLUMNS} FROM runs WHERE id = ?");
+        let row: Option<RunRow> = sqlx::query_as(&sql)
+            .bind(id)
+            .fetch_optional(&self.reader)
+            .await?;
+        row.map(RunRow::into_record).transpose()
+    }
+
+    /// A page of runs, newest first.
+    pub async fn list(&self, q: &ListQuery) -> Result<Vec<RunRecord>, DbError> {
+        let sql = format!(
+            "SELECT {RUN_COLUMNS} FROM runs
+             WHERE (?1 IS NULL OR id < ?1)
+               AND (?2 IS NULL OR status = ?2)
+               AND (?3 IS NULL OR series = ?3)
+               AND (?4 IS NULL OR submitted_at >= ?4)
+             ORDER BY id DESC LIMIT ?5"
+        );
+        let rows: Vec<RunRow> = sqlx::query_as(&sql)
+            .bind(&q.after)
+            .bind(q.status.map(RunStatus::as_str))
+            .bind(&q.series)
+            .bind(&q.since)
+            .bind(i64::from(q.limit))
+            .fetch_all(&self.reader)
+            .await?;
+        rows.into_iter().map(RunRow::into_record).collect()
+    }
+
+    /// Number of runs stored (all statuses).
+    pub async fn count_runs(&self) -> Result<i64, DbError> {
+        Ok(sqlx::query_scalar("SELECT count(*) FROM runs")
+            .fetch_one(&self.reader)
+            .await?)
+    }
+
+    /// Asks for run `id` to stop: a queued run is cancelled at once, a running one is marked
+    /// and its worker stops within a chunk.
+    pub async fn cancel(&self, id: &str) -> Result<Cancelled, DbError> {
+        let mut tx = self.writer.begin_with("BEGIN IMMEDIATE").await?;
+        let status: Option<String> = sqlx::query_scalar("SELECT status FROM runs WHERE id = ?")
+            .bind(id)
+            .fetch_optional(&mut *tx)
+            .await?;
+        let Some(status) = status else {
+            tx.rollback().await?;
+            return Ok(Cancelled::NotFound);
+        };
+        let finished = match status.as_str() {
+            "queued" => {
+                sqlx::query(
+                    "UPDATE runs SET status = 'cancelled', cancel_requested = 1, finished_at = ?
+                     WHERE id = ?",
+                )
+                .bind(now_text())
+                .bind(id)
+                .execute(&mut *tx)
+                .await?;
+                false
+            }
+            "running" => {
+                sqlx::query("UPDATE runs SET cancel_requested = 1 WHERE id = ?")
+                    .bind(id)
+                    .execute(&mut *tx)
+                    .await?;
+                false
+            }
+            "cancelled" => false,
+            _ => true,
+        };
+        tx.commit().await?;
+        let run = self.run(id).await?.ok_or_else(|| DbError::Corrupt {
+            id: id.to_owned(),
+            what: "vanished during cancellation".to_owned(),
+        })?;
+        Ok(if finished {
+            Cancelled::AlreadyFinished(run)
+        } else {
+            Cancelled::Run(run)
+        })
+    }
+
+    /// Claims the oldest queued run, or the oldest running run whose lease has expired (its
+    /// worker died): one `UPDATE ... RETURNING`, which hands out a fresh lease token so that
+    /// the previous holder can no longer complete it.
+    pub async fn claim(&self, token: &str, lease: Duration) -> Result<Option<Claim>, DbError> {
+        let now = now_ms();
+        let row: Option<ClaimRow> = sqlx::query_as(
+            "UPDATE runs
+             SET status = 'running', lease_token = ?1, lease_expires_ms = ?2, heartbeat_at = ?3,
+                 started_at = COALESCE(started_at, ?3), attempts = attempts + 1
+             WHERE id = (SELECT id FROM runs
+                         WHERE status = 'queued'
+                            OR (status = 'running' AND lease_expires_ms < ?4)
+                         ORDER BY id LIMIT 1)
+             RETURNING id, spec, request_sha256, warnings, checkpoint, attempts,
+                       cancel_requested",
+        )
+        .bind(token)
+        .bind(now.saturating_add(millis(lease)))
+        .bind(now_text())
+        .bind(now)
+        .fetch_optional(&self.writer)
+        .await?;
+        Ok(row.map(ClaimRow::into_claim))
+    }
+
+    /// Extends the lease of run `id` held with `token` and records progress. `None` when
+    /// the lease is lost (expired and taken, or the run is no longer running); otherwise
+    /// whether cancellation was requested.
+    pub async fn heartbeat(
+        &self,
+        id: &str,
+        token: &str,
+        lease: Duration,
+        done: u64,
+        checkpoint: Option<&str>,
+    ) -> Result<Option<bool>, DbError> {
+        let cancel: Option<i64> = sqlx::query_scalar(
+            "UPDATE runs
+             SET lease_expires_ms = ?1, heartbeat_at = ?2, progress_done = ?3,
+                 checkpoint = COALESCE(?4, checkpoint)
+             WHERE id = ?5 AND lease_token = ?6 AND status = 'running'
+             RETURNING cancel_requested",
+        )
+        .bind(now_ms().saturating_add(millis(lease)))
+        .bind(now_text())
+        .bind(done as i64)
+        .bind(checkpoint)
+        .bind(id)
+        .bind(token)
+        .fetch_optional(&self.writer)
+        .await?;
+        Ok(cancel.map(|c| c != 0))
+    }
+
+    /// Ends run `id` as `finish` says, if `token` still holds its lease (fencing). Returns
+    /// whether the completion was accepted.
+    pub async fn finish(&self, id: &str, token: &str, finish: &Finish) -> Result<bool, DbError> {
+        let now = now_text();
+        let result = match finish {
+            Finish::Succeeded {
+                provenance,
+                results,
+                warnings,
+            } => {
+                sqlx::query(
+                    "UPDATE runs
+                     SET status = 'succeeded', provenance = ?1, results = ?2, warnings = ?3,
+                         progress_done = progress_total, finished_at = ?4,
+                         lease_token = NULL, lease_expires_ms = NULL, checkpoint = NULL
+                     WHERE id = ?5 AND lease_token = ?6 AND status = 'running'",
+                )
+                .bind(provenance)
+                .bind(results)
+                .bind(serde_json::to_string(warnings).unwrap_or_else(|_| "[]".to_owned()))
+                .bind(&now)
+                .bind(id)
+                .bind(token)
+                .execute(&self.writer)
+                .await?
+            }
+            Finish::Failed { error } => {
+                sqlx::query(
+                    "UPDATE runs
+                     SET status = 'failed', error = ?1, finished_at = ?2,
+                         lease_token = NULL, lease_expires_ms = NULL
+                     WHERE id = ?3 AND lease_token = ?4 AND status = 'running'",
+                )
+                .bind(error)
+                .bind(&now)
+                .bind(id)
+                .bind(token)
+                .execute(&self.writer)
+                .await?
+            }
+            Finish::Cancelled => {
+                sqlx::query(
+                    "UPDATE runs
+                     SET status = 'cancelled', finished_at = ?1,
+                         lease_token = NULL, lease_expires_ms = NULL
+                     WHERE id = ?2 AND lease_token = ?3 AND status = 'running'",
+                )
+                .bind(&now)
+                .bind(id)
+                .bind(token)
+                .execute(&self.writer)
+                .await?
+            }
+        };
+        Ok(result.rows_affected() == 1)
+    }
+
+    /// Puts run `id` back in the queue (shutdown), keeping its checkpoint, if `token` still
+    /// holds its lease.
+    pub async fn requeue(&self, id: &str, token: &str) -> Result<bool, DbError> {
+        let result = sqlx::query(
+            "UPDATE runs SET status = 'queued', lease_token = NULL, lease_expires_ms = NULL
+             WHERE id = ? AND lease_token = ? AND status = 'running'",
+        )
+        .bind(id)
+        .bind(token)
+        .execute(&self.writer)
+        .await?;
+        Ok(result.rows_affected() == 1)
+    }
+
+    /// Checks that the database takes the write lock (for `/readyz`).
+    pub async fn check_writable(&self) -> Result<(), DbError> {
+        let tx = self.writer.begin_with("BEGIN IMMEDIATE").await?;
+        tx.rollback().await?;
+        Ok(())
+    }
+}

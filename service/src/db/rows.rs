@@ -1,0 +1,134 @@
+//! Rows as SQLite returns them, and their conversion into the records the rest of the
+//! service uses. JSON columns are kept as text: they are written once and served as stored.
+
+use super::DbError;
+use crate::domain::RunStatus;
+
+/// Columns of [`RunRow`], in `SELECT` form.
+pub(super) const RUN_COLUMNS: &str = "id, status, series, spec, provenance, results, warnings, \
+    error, progress_done, progress_total, submitted_at, started_at, finished_at";
+
+#[derive(Debug, sqlx::FromRow)]
+pub(super) struct RunRow {
+    id: String,
+    status: String,
+    series: Option<String>,
+    spec: String,
+    provenance: Option<String>,
+    results: Option<String>,
+    warnings: String,
+    error: Option<String>,
+    progress_done: i64,
+    progress_total: i64,
+    submitted_at: String,
+    started_at: Option<String>,
+    finished_at: Option<String>,
+}
+
+/// A stored run. JSON members are the stored text.
+#[derive(Debug, Clone, PartialEq)]
+pub struct RunRecord {
+    /// UUID v7.
+    pub id: String,
+    /// Where the run is.
+    pub status: RunStatus,
+    /// `spec.series`, if any.
+    pub series: Option<String>,
+    /// The job as accepted (JSON object text).
+    pub spec: String,
+    /// Provenance (JSON object text), once succeeded.
+    pub provenance: Option<String>,
+    /// Results (JSON array text), once succeeded.
+    pub results: Option<String>,
+    /// Warnings.
+    pub warnings: Vec<String>,
+    /// Why it failed.
+    pub error: Option<String>,
+    /// Replicates (or units of work) done.
+    pub done: u64,
+    /// Replicates (or units of work) in all.
+    pub total: u64,
+    /// RFC 3339 UTC.
+    pub submitted_at: String,
+    /// RFC 3339 UTC, first claim.
+    pub started_at: Option<String>,
+    /// RFC 3339 UTC.
+    pub finished_at: Option<String>,
+}
+
+fn corrupt(id: &str, what: impl Into<String>) -> DbError {
+    DbError::Corrupt {
+        id: id.to_owned(),
+        what: what.into(),
+    }
+}
+
+fn warnings(id: &str, text: &str) -> Result<Vec<String>, DbError> {
+    serde_json::from_str(text).map_err(|e| corrupt(id, format!("warnings: {e}")))
+}
+
+impl RunRow {
+    pub(super) fn into_record(self) -> Result<RunRecord, DbError> {
+        let status = RunStatus::parse(&self.status)
+            .ok_or_else(|| corrupt(&self.id, format!("status {:?}", self.status)))?;
+        Ok(RunRecord {
+            warnings: warnings(&self.id, &self.warnings)?,
+            status,
+            series: self.series,
+            spec: self.spec,
+            provenance: self.provenance,
+            results: self.results,
+            error: self.error,
+            done: u64::try_from(self.progress_done).unwrap_or(0),
+            total: u64::try_from(self.progress_total).unwrap_or(0),
+            submitted_at: self.submitted_at,
+            started_at: self.started_at,
+            finished_at: self.finished_at,
+            id: self.id,
+        })
+    }
+}
+
+#[derive(Debug, sqlx::FromRow)]
+pub(super) struct ClaimRow {
+    id: String,
+    spec: String,
+    request_sha256: String,
+    warnings: String,
+    checkpoint: Option<String>,
+    attempts: i64,
+    cancel_requested: i64,
+}
+
+/// A run handed to a worker, with what it needs to compute it.
+#[derive(Debug, Clone)]
+pub struct Claim {
+    /// Run id.
+    pub id: String,
+    /// The job as accepted (JSON text).
+    pub spec: String,
+    /// SHA-256 of the request body, for provenance.
+    pub request_sha256: String,
+    /// Validation warnings recorded at submission (or unreadable-warnings text on error).
+    pub warnings: Result<Vec<String>, String>,
+    /// The last committed checkpoint (JSON text).
+    pub checkpoint: Option<String>,
+    /// This claim's number (1 for the first).
+    pub attempt: u64,
+    /// Cancellation was requested before the claim.
+    pub cancel_requested: bool,
+}
+
+impl ClaimRow {
+    pub(super) fn into_claim(self) -> Claim {
+        Claim {
+            warnings: warnings(&self.id, &self.warnings).map_err(|e| e.to_string()),
+            id: self.id,
+            spec: self.spec,
+            request_sha256: self.request_sha256,
+            checkpoint: self.checkpoint,
+            attempt: u64::try_from(self.attempts).unwrap_or(0),
+            cancel_requested: self.cancel_requested != 0,
+        }
+    }
+}

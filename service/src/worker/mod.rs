@@ -1,0 +1,275 @@
+//! The worker pool: claims queued runs, computes them on the bounded CPU pool, keeps their
+//! lease alive, and records how they ended.
+//!
+//! This module owns the life of a claimed run: the lease token handed out by
+//! [`Store::claim`] (which also rescues runs whose lease expired), the heartbeat task that
+//! extends the lease, publishes progress and notices a cancellation request or a lost lease,
+//! the computation itself (`compute::run` on a blocking thread inside the shared rayon pool,
+//! never on the async runtime), and the completion, which the store accepts only while the
+//! token still holds the lease (fencing). On shutdown a running computation is stopped at its
+//! next chunk boundary and the run goes back to the queue, neither lost nor failed.
+//!
+//! Ensembles are run whole: a run interrupted by a crash or a shutdown starts again from
+//! replicate 0 when it is claimed again (the result is the same, only the time is lost).
+
+use crate::compute::{self, ComputeError};
+use crate::config::Config;
+use crate::db::{Claim, Store};
+use crate::domain::Finish;
+use crate::provenance::Provenance;
+use crate::spec;
+use demefix_science::ensemble::ProgressObserver;
+use std::sync::atomic::{AtomicBool, AtomicU64, AtomicUsize, Ordering};
+use std::sync::Arc;
+use std::time::Duration;
+use tokio::sync::{watch, Notify};
+use tokio::task::JoinHandle;
+use tracing::{error, info, info_span, warn, Instrument};
+
+/// How often an idle worker looks for work (and for expired leases) without being woken.
+const IDLE_POLL: Duration = Duration::from_millis(500);
+
+/// What every worker shares.
+#[derive(Clone)]
+pub struct Workers {
+    /// The job store.
+    pub store: Store,
+    /// The service configuration.
+    pub config: Arc<Config>,
+    /// The bounded CPU pool every computation runs on.
+    pub pool: Arc<rayon::ThreadPool>,
+    /// Woken when a run is submitted.
+    pub wake: Arc<Notify>,
+    /// Becomes `true` when the service shuts down.
+    pub shutdown: watch::Receiver<bool>,
+    /// Number of worker loops still running (for `/readyz`).
+    pub alive: Arc<AtomicUsize>,
+}
+
+impl Workers {
+    /// Starts `self.config.workers` worker loops.
+    pub fn spawn(&self) -> Vec<JoinHandle<()>> {
+        (0..self.config.workers)
+            .map(|n| {
+                let w = self.clone();
+                tokio::spawn(w.run_loop().instrument(info_span!("worker", worker = n)))
+            })
+            .collect()
+    }
+
+    async fn run_loop(mut self) {
+        let _alive = Alive::new(&self.alive);
+        loop {
+            if *self.shutdown.borrow() {
+                break;
+            }
+            let token = uuid::Uuid::now_v7().to_string();
+            match self.store.claim(&token, self.config.lease).await {
+                Ok(Some(claim)) => {
+                    let span = info_span!("run", run_id = %claim.id, attempt = claim.attempt);
+                    self.process(claim, token).instrument(span).await;
+                }
+                Ok(None) => {
+                    tokio::select! {
+                        () = self.wake.notified() => {}
+                        () = tokio::time::sleep(IDLE_POLL) => {}
+                        _ = self.shutdown.changed() => {}
+                    }
+                }
+                Err(e) => {
+                    error!(error = %e, "cannot claim a run");
+                    tokio::time::sleep(IDLE_POLL).await;
+                }
+            }
+        }
+    }
+
+    async fn end(&self, id: &str, token: &str, finish: Finish) {
+        let what = match &finish {
+            Finish::Succeeded { .. } => "succeeded",
+            Finish::Failed { .. } => "failed",
+            Finish::Cancelled => "cancelled",
+        };
+        match self.store.finish(id, token, &finish).await {
+            Ok(true) => {
+                metrics::counter!("demefix_runs_finished_total", "status" => what).increment(1);
+                info!(status = what, "run finished");
+            }
+            Ok(false) => warn!(
+                status = what,
+                "completion rejected: this worker no longer holds the lease"
+            ),
+            Err(e) => error!(error = %e, status = what, "cannot record the end of the run"),
+        }
+    }
+
+    async fn process(&self, claim: Claim, token: String) {
+        info!("run claimed");
+        if claim.cancel_requested {
+            return self.end(&claim.id, &token, Finish::Cancelled).await;
+        }
+        let prepared = serde_json::from_str::<serde_json::Value>(&claim.spec)
+            .map_err(|e| format!("the stored spec is not JSON: {e}"))
+            .and_then(|doc| {
+                spec::validate(&doc, &self.config.limits()).map_err(|problems| {
+                    let list: Vec<String> = problems
+                        .iter()
+                        .map(|p| format!("{}: {}", p.pointer, p.detail))
+                        .collect();
+                    format!(
+                        "the stored spec no longer passes validation under this deployment's \
+                         limits: {}",
+                        list.join("; ")
+                    )
+                })
+            })
+            .and_then(|job| Ok((job, claim.warnings.clone()?)));
+        let (job, mut warnings) = match prepared {
+            Ok(x) => x,
+            Err(error) => return self.end(&claim.id, &token, Finish::Failed { error }).await,
+        };
+
+        let flags = Arc::new(RunFlags::default());
+        let stop_heartbeat = Arc::new(Notify::new());
+        let heartbeat = tokio::spawn(
+            heartbeat(
+                self.clone(),
+                claim.id.clone(),
+                token.clone(),
+                flags.clone(),
+                stop_heartbeat.clone(),
+            )
+            .in_current_span(),
+        );
+        let pool = self.pool.clone();
+        let threads = pool.current_num_threads();
+        let span = tracing::Span::current();
+        let compute_flags = flags.clone();
+        let computed = tokio::task::spawn_blocking(move || {
+            let _entered = span.enter();
+            let observer = Observer(&compute_flags);
+            let outcome = compute::run(&job, &pool, &observer, &compute_flags.cancel);
+            (job, outcome)
+        })
+        .await;
+        stop_heartbeat.notify_one();
+        let _ = heartbeat.await;
+
+        let finish = match computed {
+            Ok((job, Ok(outcome))) => {
+                let mut provenance = Provenance::new(&job, b"", &outcome.method, threads);
+                provenance.request_sha256 = claim.request_sha256.clone();
+                warnings.extend(outcome.warnings);
+                match (
+                    serde_json::to_string(&provenance),
+                    serde_json::to_string(&outcome.results),
+                ) {
+                    (Ok(provenance), Ok(results)) => Finish::Succeeded {
+                        provenance,
+                        results,
+                        warnings,
+                    },
+                    (Err(e), _) | (_, Err(e)) => Finish::Failed {
+                        error: format!("the results could not be written: {e}"),
+                    },
+                }
+            }
+            Ok((_, Err(ComputeError::Cancelled))) => {
+                if flags.lease_lost.load(Ordering::SeqCst) {
+                    warn!("lease lost: the run was stopped and left to its new holder");
+                    return;
+                }
+                if flags.user_cancel.load(Ordering::SeqCst) {
+                    Finish::Cancelled
+                } else {
+                    match self.store.requeue(&claim.id, &token).await {
+                        Ok(true) => info!("shutting down: run put back in the queue"),
+                        Ok(false) => warn!("shutting down: the lease was already lost"),
+                        Err(e) => error!(error = %e, "cannot put the run back in the queue"),
+                    }
+                    return;
+                }
+            }
+            Ok((_, Err(e))) => Finish::Failed {
+                error: format!("the job could not be computed: {e}"),
+            },
+            Err(join) => {
+                error!(error = %join, "the computation panicked");
+                Finish::Failed {
+                    error: "internal error while computing".to_owned(),
+                }
+            }
+        };
+        self.end(&claim.id, &token, finish).await;
+    }
+}
+
+/// What the heartbeat, the shutdown and the computation tell each other about one run.
+#[derive(Debug, Default)]
+struct RunFlags {
+    /// Raised to stop the computation at its next check.
+    cancel: AtomicBool,
+    /// A client asked to cancel.
+    user_cancel: AtomicBool,
+    /// The lease was taken by another worker.
+    lease_lost: AtomicBool,
+    /// Replicates done so far.
+    done: AtomicU64,
+}
+
+struct Observer<'a>(&'a RunFlags);
+
+impl ProgressObserver for Observer<'_> {
+    fn on_progress(&self, done: u64, _total: u64) {
+        self.0.done.store(done, Ordering::Relaxed);
+    }
+}
+
+async fn heartbeat(w: Workers, id: String, token: String, flags: Arc<RunFlags>, stop: Arc<Notify>) {
+    let mut shutdown = w.shutdown.clone();
+    let mut ticker = tokio::time::interval(w.config.heartbeat);
+    ticker.tick().await;
+    loop {
+        if *shutdown.borrow() {
+            flags.cancel.store(true, Ordering::SeqCst);
+        }
+        tokio::select! {
+            () = stop.notified() => return,
+            _ = ticker.tick() => {}
+            _ = shutdown.changed(), if !flags.cancel.load(Ordering::SeqCst) => continue,
+        }
+        let done = flags.done.load(Ordering::Relaxed);
+        match w
+            .store
+            .heartbeat(&id, &token, w.config.lease, done, None)
+            .await
+        {
+            Ok(Some(true)) => {
+                flags.user_cancel.store(true, Ordering::SeqCst);
+                flags.cancel.store(true, Ordering::SeqCst);
+            }
+            Ok(Some(false)) => {}
+            Ok(None) => {
+                flags.lease_lost.store(true, Ordering::SeqCst);
+                flags.cancel.store(true, Ordering::SeqCst);
+            }
+            Err(e) => warn!(error = %e, "heartbeat failed; retrying at the next beat"),
+        }
+    }
+}
+
+/// Counts a worker loop as alive while it exists.
+struct Alive(Arc<AtomicUsize>);
+
+impl Alive {
+    fn new(count: &Arc<AtomicUsize>) -> Self {
+        count.fetch_add(1, Ordering::SeqCst);
+        Self(count.clone())
+    }
+}
+
+impl Drop for Alive {
+    fn drop(&mut self) {
+        self.0.fetch_sub(1, Ordering::SeqCst);
+    }
+}

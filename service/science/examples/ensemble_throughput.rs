@@ -95,29 +95,46 @@ fn measure(model: &Model, replicates: u64, threads: usize) -> (u128, f64, f64) {
     (changes, secs, cpu)
 }
 
-/// Name, deme sizes, matrix rows, replicates.
-type Case = (&'static str, Vec<u64>, Vec<Vec<f64>>, u64);
+/// Demes, matrix kind, deme sizes, matrix rows, replicates.
+type Case = (usize, &'static str, Vec<u64>, Vec<Vec<f64>>, u64);
+
+fn load_average() -> String {
+    std::fs::read_to_string("/proc/loadavg")
+        .map(|s| s.split_whitespace().take(3).collect::<Vec<_>>().join(" "))
+        .unwrap_or_else(|_| "unknown".into())
+}
 
 fn main() {
+    // arguments: deme counts to run (default all), `--div D` divides the replicate counts,
+    // `--one` skips the two-thread run (for instruction counts under callgrind)
+    let args: Vec<String> = std::env::args().skip(1).collect();
+    let mut only: Vec<usize> = Vec::new();
+    let (mut divisor, mut one_only) = (1u64, false);
+    let mut it = args.iter();
+    while let Some(a) = it.next() {
+        match a.as_str() {
+            "--div" => divisor = it.next().and_then(|d| d.parse().ok()).unwrap_or(1),
+            "--one" => one_only = true,
+            m => only.extend(m.parse::<usize>().ok()),
+        }
+    }
     let mut rng = Lcg(7);
     let cases: Vec<Case> = vec![
-        ("m=2 dense", vec![100, 100], dense(2, &mut rng), 20000),
-        ("m=10 dense", vec![20; 10], dense(10, &mut rng), 20000),
-        ("m=100 dense", vec![10; 100], dense(100, &mut rng), 100),
-        ("m=1000 sparse", vec![5; 1000], sparse(1000, &mut rng), 40),
+        (2, "dense", vec![100, 100], dense(2, &mut rng), 20000),
+        (10, "dense", vec![20; 10], dense(10, &mut rng), 20000),
+        (100, "dense", vec![10; 100], dense(100, &mut rng), 100),
+        (1000, "sparse", vec![5; 1000], sparse(1000, &mut rng), 40),
     ];
+    println!("load average at start: {}", load_average());
     println!(
-        "{:<15} {:<12} {:>12} {:>11} {:>13} {:>9} {:>9}",
-        "case", "rule", "changes", "Mev/s wall", "Mev/cpu-s", "1->2 thr", "s (1 thr)"
+        "| {:>5} | {:<6} | {:<11} | {:>12} | {:>14} | {:>13} | {:>12} |",
+        "m", "matrix", "rule", "changes", "Mev/s per core", "Mev/CPU-s", "1->2 threads"
     );
-    // optional arguments: a case-name filter and a divisor of the replicate counts
-    let only = std::env::args().nth(1);
-    let divisor: u64 = std::env::args()
-        .nth(2)
-        .and_then(|d| d.parse().ok())
-        .unwrap_or(1);
-    for (name, sizes, rows, replicates) in &cases {
-        if only.as_ref().is_some_and(|o| !name.contains(o.as_str())) {
+    println!(
+        "|------:|:-------|:------------|-------------:|---------------:|--------------:|-------------:|"
+    );
+    for (m, kind, sizes, rows, replicates) in &cases {
+        if !only.is_empty() && !only.contains(m) {
             continue;
         }
         for rule in [Rule::DeathBirth, Rule::BirthDeath] {
@@ -126,18 +143,24 @@ fn main() {
             let model = Model::new(&pop, kernel, rule, Scope::Deme, 0.2).expect("model");
             let replicates = (*replicates / divisor).max(1);
             let (changes, one, cpu) = measure(&model, replicates, 1);
-            let (changes2, two, _) = measure(&model, replicates, 2);
-            assert_eq!(changes, changes2, "results depend on the thread count");
+            let speedup = if one_only {
+                "-".to_string()
+            } else {
+                let (changes2, two, _) = measure(&model, replicates, 2);
+                assert_eq!(changes, changes2, "results depend on the thread count");
+                format!("{:.2}", one / two)
+            };
             println!(
-                "{:<15} {:<12} {:>12} {:>11.1} {:>13.1} {:>9.2} {:>9.2}",
-                name,
+                "| {:>5} | {:<6} | {:<11} | {:>12} | {:>14.1} | {:>13.1} | {:>12} |",
+                m,
+                kind,
                 rule.as_str(),
                 changes,
                 changes as f64 / one / 1e6,
                 changes as f64 / cpu / 1e6,
-                one / two,
-                one
+                speedup
             );
         }
     }
+    println!("load average at end: {}", load_average());
 }

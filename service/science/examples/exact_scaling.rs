@@ -103,10 +103,13 @@ fn peak_rss_mib() -> f64 {
 
 fn run(name: &str, solver: SolverChoice) {
     let model = case(name).expect("unknown case");
-    let config = ExactConfig {
+    let mut config = ExactConfig {
         solver,
         ..ExactConfig::default()
     };
+    if let Some(tolerance) = std::env::args().nth(3).and_then(|t| t.parse().ok()) {
+        config.tolerance = tolerance;
+    }
     let started = Instant::now();
     let solution = exact::solve(&model, &config);
     let seconds = started.elapsed().as_secs_f64();
@@ -114,7 +117,7 @@ fn run(name: &str, solver: SolverChoice) {
         Ok(sol) => {
             let r = &sol.report;
             println!(
-                "{name:<24} states {:>8} nnz {:>9} {:<16} iters {:>6} residual {:.1e} time {seconds:>7.2} s peak RSS {:>7.0} MiB  rho[0] {:.10} T_fix[0] {:.4}",
+                "{name:<24} states {:>8} nnz {:>9} {:<16} iters {:>6} residual {:.1e} time {seconds:>7.2} s peak RSS {:>7.0} MiB  rho[0] {:.12e} T_fix[0] {:.10e}",
                 r.states,
                 r.nonzeros,
                 r.solver,

@@ -524,7 +524,7 @@ fn direct_and_iterative_solvers_agree() {
         let direct = solve_with(&m, SolverChoice::Direct);
         let iterative = solve_with(&m, SolverChoice::Iterative);
         assert_eq!(direct.report.solver, "sparse_lu");
-        assert_eq!(iterative.report.solver, "bicgstab_two_level");
+        assert_eq!(iterative.report.solver, "bicgstab_two_level_ilu0");
         assert_eq!(direct.report.states, 3000);
         assert!(direct.report.relative_residual < 1e-12);
         assert!(iterative.report.relative_residual <= 1e-8);

@@ -5,10 +5,13 @@
 //! `u_i` of `k -> k + e_i` and `d_i` of `k -> k - e_i` (the model's per-event probabilities
 //! times a common denominator: `N` for death-birth, `W = r K + N - K` for birth-death). The
 //! chance that an event changes the state is `lambda = sum (u + d) / denominator`; the number
-//! of events up to and including the change is drawn as Geometric(`lambda`)
-//! (`1 + floor(E / -ln(1 - lambda))`, `E ~ Exp(1)`), then the change
-//! is picked in proportion to the rates. Wright-Fisher draws one binomial per deme per
-//! generation with the model's refill probabilities.
+//! of events up to and including the change is Geometric(`lambda`), and the change is picked
+//! in proportion to the rates. For `lambda >= DIRECT_FROM` the events are simply run one by
+//! one (one uniform each; the uniform of the changing event also picks the change), below it
+//! the count is drawn at once as `1 + floor(E / -ln(1 - lambda))`, `E ~ Exp(1)`, and the
+//! change by a fresh uniform. Both give the same distribution; the switch only saves work.
+//! Wright-Fisher draws one binomial per deme per generation with the model's refill
+//! probabilities.
 //!
 //! Every rate is built from per-target sums over source demes, `P_i = sum_j w_ij a_j` and
 //! `Q_i = sum_j w_ij c_j`, where `w` is the rule's matrix and `(a_j, c_j)` depend on `k_j`
@@ -21,11 +24,17 @@
 //! | birth-death | `F[j][i]` | `(r k_j, n_j - k_j)` | `((n_i - k_i) P_i, k_i Q_i) / n_i` |
 //!
 //! When `k_j` changes only the targets `i` with `w_ij > 0` change (column `j` of `B`, row `j`
-//! of `F`), so an event costs `O(nonzeros of that line)`; the change is then picked from a
-//! sum tree over the `2 m` rates (rebuilt in one pass for few demes or a dense matrix,
-//! updated along the changed paths otherwise). Integer counts of sources holding variants and
+//! of `F`), so an event costs `O(nonzeros of that line)`. Two layouts keep the rates:
+//! for few demes or a dense matrix (the dense path) every array is per deme and an event
+//! rewrites all sums and rates in one fused pass over the dense line of `j`, then picks the
+//! change by a linear scan; otherwise (the sparse path) a sum tree over the `2 m` rates is
+//! updated along the changed paths. Integer counts of sources holding variants and
 //! residents make a sum that must be 0 exactly 0, and all sums are rebuilt from scratch
 //! every [`REFRESH_EVERY`] state changes, so rounding never accumulates without bound.
+
+mod small;
+
+pub use small::SMALL_MAX_DEMES;
 
 use super::stream::uniform;
 use super::tree::SumTree;
@@ -40,9 +49,19 @@ use serde::{Deserialize, Serialize};
 pub const REFRESH_EVERY: u64 = 4096;
 
 /// Up to this many demes (or with a dense matrix, at least a quarter of its entries
-/// nonzero) all rates are rewritten and the sum tree rebuilt in one pass per event; above
-/// it, only the changed rates and their ancestors are updated.
+/// nonzero, and at most [`DENSE_MAX_DEMES`] demes) all rates are rewritten in one pass per
+/// event and the change is found by a linear scan; above it, only the changed rates and
+/// their ancestors in a sum tree are updated.
 pub const REBUILD_ALL_DEMES: usize = 32;
+
+/// Largest number of demes given the dense path for a dense matrix (it stores the matrix
+/// again as `m * m` floats).
+pub const DENSE_MAX_DEMES: usize = 1024;
+
+/// From this chance `lambda` that an event changes the state, events are run one by one
+/// (expected `1 / lambda` uniforms) instead of drawing their number from a logarithm and an
+/// exponential variate. Either way the number is Geometric(`lambda`).
+pub const DIRECT_FROM: f64 = 0.2;
 
 /// How a replicate ended.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
@@ -94,6 +113,8 @@ pub(crate) struct Tables {
     r: f64,
     n: Vec<u64>,
     inv_n: Vec<f64>,
+    /// `n_i` as a float.
+    nf: Vec<f64>,
     total: u64,
     totalf: f64,
     inv_total: f64,
@@ -105,6 +126,8 @@ pub(crate) struct Tables {
     src_start: Vec<usize>,
     src_idx: Vec<usize>,
     src_w: Vec<f64>,
+    /// Dense path: `wcol[j * m + i] = w_ij`, the targets of source `j` with zeros.
+    wcol: Vec<f64>,
     /// Arrival thresholds of deme `i`, ascending: `arr_*[arr_start[i]..arr_start[i + 1]]`.
     arr_start: Vec<usize>,
     arr_thr: Vec<u64>,
@@ -214,6 +237,7 @@ impl Tables {
             kind,
             r: model.fitness(),
             inv_n: n.iter().map(|&x| 1.0 / x as f64).collect(),
+            nf: n.iter().map(|&x| as_f64(x)).collect(),
             n,
             total,
             totalf: total as f64,
@@ -224,12 +248,14 @@ impl Tables {
             src_start,
             src_idx,
             src_w,
+            wcol: Vec::new(),
             arr_start,
             arr_thr,
             arr_slot,
             fractions: fractions.len(),
             // a dense matrix costs O(m) per event anyway: scan rather than keep a tree
-            rebuild_all: m <= REBUILD_ALL_DEMES || 4 * kernel.nnz() >= m * m,
+            rebuild_all: m <= REBUILD_ALL_DEMES
+                || (4 * kernel.nnz() >= m * m && m <= DENSE_MAX_DEMES),
             refresh_every: REFRESH_EVERY,
             max_ticks,
             start_deme,
@@ -243,6 +269,20 @@ impl Tables {
     /// Builds the all-resident snapshot (again, after a change of the selection method).
     pub(crate) fn build_resident(&mut self) {
         self.resident = None;
+        self.wcol = Vec::new();
+        if self.rebuild_all && self.kind != Kind::WrightFisher {
+            let m = self.demes();
+            self.wcol = vec![0.0; m * m];
+            for j in 0..m {
+                let line = self.infl_start[j]..self.infl_start[j + 1];
+                for (&i, &w) in self.infl_target[line.clone()]
+                    .iter()
+                    .zip(&self.infl_w[line])
+                {
+                    self.wcol[j * m + i] = w;
+                }
+            }
+        }
         if self.kind != Kind::WrightFisher {
             let mut base = Replicate::new(self);
             base.refresh(self);
@@ -298,8 +338,8 @@ impl Tables {
     }
 }
 
-/// Sums and counts of one deme: as a source, `(a_j, c_j)`; as a target, `(P_i, Q_i)` and
-/// the numbers of its sources holding variants (`nv`) and residents (`nr`).
+/// Sums and counts of one deme (sparse path): as a source, `(a_j, c_j)`; as a target,
+/// `(P_i, Q_i)` and the numbers of its sources holding variants (`nv`) and residents (`nr`).
 #[derive(Debug, Clone, Copy, Default)]
 struct DemeSums {
     a: f64,
@@ -308,6 +348,204 @@ struct DemeSums {
     q: f64,
     nv: u32,
     nr: u32,
+}
+
+/// Per-deme state of the dense path, one array per quantity (struct of arrays), every array
+/// of length `m`: the loops over targets then run over equal-length slices without bounds
+/// checks.
+#[derive(Debug, Clone, Default)]
+struct Dense {
+    /// `k_i` as a float.
+    kf: Vec<f64>,
+    /// Source values `(a_j, c_j)`.
+    a: Vec<f64>,
+    c: Vec<f64>,
+    /// Target sums `(P_i, Q_i)`.
+    p: Vec<f64>,
+    q: Vec<f64>,
+    /// Sources of target `i` holding variants and residents.
+    nv: Vec<u32>,
+    nr: Vec<u32>,
+    /// Rates `u_i`, `d_i` and their sum `s_i = u_i + d_i`.
+    u: Vec<f64>,
+    d: Vec<f64>,
+    s: Vec<f64>,
+    /// `sum_i s_i`, added in deme order.
+    total: f64,
+}
+
+impl Dense {
+    fn new(m: usize) -> Self {
+        Self {
+            kf: vec![0.0; m],
+            a: vec![0.0; m],
+            c: vec![0.0; m],
+            p: vec![0.0; m],
+            q: vec![0.0; m],
+            nv: vec![0; m],
+            nr: vec![0; m],
+            u: vec![0.0; m],
+            d: vec![0.0; m],
+            s: vec![0.0; m],
+            total: 0.0,
+        }
+    }
+
+    fn copy_from(&mut self, o: &Self) {
+        self.kf.copy_from_slice(&o.kf);
+        self.a.copy_from_slice(&o.a);
+        self.c.copy_from_slice(&o.c);
+        self.p.copy_from_slice(&o.p);
+        self.q.copy_from_slice(&o.q);
+        self.nv.copy_from_slice(&o.nv);
+        self.nr.copy_from_slice(&o.nr);
+        self.u.copy_from_slice(&o.u);
+        self.d.copy_from_slice(&o.d);
+        self.s.copy_from_slice(&o.s);
+        self.total = o.total;
+    }
+
+    /// Adds `w_i * (da, dc)` to every target's `(P_i, Q_i)` (`w` is the changed source's
+    /// dense column, zeros included: adding `0 * da` leaves a sum unchanged), zeroes a sum
+    /// whose source count is 0 when `ZERO` (only after a count changed), and rewrites every
+    /// rate and the total in one fused pass.
+    #[inline(always)]
+    fn update<const K: u8, const ZERO: bool>(
+        &mut self,
+        w: &[f64],
+        da: f64,
+        dc: f64,
+        nf: &[f64],
+        inv_n: &[f64],
+    ) {
+        let m = w.len();
+        let (p, q) = (&mut self.p[..m], &mut self.q[..m]);
+        let (u, d, s) = (&mut self.u[..m], &mut self.d[..m], &mut self.s[..m]);
+        let (kf, nf, inv_n) = (&self.kf[..m], &nf[..m], &inv_n[..m]);
+        let (nv, nr) = (&self.nv[..m], &self.nr[..m]);
+        let mut total = 0.0;
+        for i in 0..m {
+            let mut pi = p[i] + w[i] * da;
+            let mut qi = q[i] + w[i] * dc;
+            if ZERO {
+                if nv[i] == 0 {
+                    pi = 0.0;
+                }
+                if nr[i] == 0 {
+                    qi = 0.0;
+                }
+            }
+            p[i] = pi;
+            q[i] = qi;
+            let (ui, di) = rates::<K>(pi, qi, nf[i] - kf[i], kf[i], inv_n[i]);
+            u[i] = ui;
+            d[i] = di;
+            let si = ui + di;
+            s[i] = si;
+            total += si;
+        }
+        self.total = total;
+    }
+
+    /// Rewrites every rate and the total from `(P, Q)` and the counts.
+    fn rates_all<const K: u8>(&mut self, nf: &[f64], inv_n: &[f64]) {
+        let m = self.p.len();
+        let mut total = 0.0;
+        for i in 0..m {
+            let (ui, di) = rates::<K>(
+                self.p[i],
+                self.q[i],
+                nf[i] - self.kf[i],
+                self.kf[i],
+                inv_n[i],
+            );
+            self.u[i] = ui;
+            self.d[i] = di;
+            self.s[i] = ui + di;
+            total += self.s[i];
+        }
+        self.total = total;
+    }
+
+    /// The change a point `v` of `[0, total)` falls on: scanning the demes in order, the
+    /// deme `i` with `sum_{l < i} s_l <= v < sum_{l <= i} s_l`, then up if the remainder is
+    /// below `u_i`. Never returns a move of rate 0: a point pushed past the end by rounding
+    /// goes to the last deme with a positive rate.
+    #[inline(always)]
+    fn pick(&self, mut v: f64) -> (usize, bool) {
+        let m = self.s.len();
+        let (s, u, d) = (&self.s[..m], &self.u[..m], &self.d[..m]);
+        for i in 0..m {
+            let si = s[i];
+            if v < si {
+                return (i, v < u[i] || d[i] == 0.0);
+            }
+            v -= si;
+        }
+        let i = s
+            .iter()
+            .rposition(|&x| x > 0.0)
+            .expect("a positive total has a positive rate");
+        (i, d[i] == 0.0)
+    }
+}
+
+/// `(u_i, d_i)` from `(P_i, Q_i)`, the vacant and held places `(n_i - k_i, k_i)` and `1/n_i`
+/// (the table in the module documentation).
+#[inline(always)]
+fn rates<const K: u8>(p: f64, q: f64, vacant: f64, held: f64, inv_n: f64) -> (f64, f64) {
+    rates_padded::<K>(p, q, vacant, held, inv_n, 0.0)
+}
+
+/// [`rates`] with `pad` added to the neighbourhood normaliser `P + Q`: 0 for a real deme,
+/// 1 for a padding deme of the small path (where `P = Q = 0` and both rates are 0).
+#[inline(always)]
+fn rates_padded<const K: u8>(
+    p: f64,
+    q: f64,
+    vacant: f64,
+    held: f64,
+    inv_n: f64,
+    pad: f64,
+) -> (f64, f64) {
+    let p = p.max(0.0);
+    let q = q.max(0.0);
+    match K {
+        DB_DEME => (vacant * p, held * q),
+        DB_NEIGHBOURHOOD => {
+            let s = p + q + pad;
+            (vacant * p / s, held * q / s)
+        }
+        _ => (vacant * p * inv_n, held * q * inv_n),
+    }
+}
+
+/// The number of events up to and including the next state change, Geometric(`lambda`) with
+/// `lambda = total / denom`, and a point `v` uniform on `[0, total)` independent of it that
+/// picks the change (see [`Replicate::jump_step`]).
+#[inline(always)]
+fn draw_wait<R: Rng>(rng: &mut R, total: f64, denom: f64, lambda: f64) -> (u64, f64) {
+    if lambda >= DIRECT_FROM {
+        let mut wait = 1u64;
+        loop {
+            let v = uniform(rng) * denom;
+            if v < total {
+                return (wait, v);
+            }
+            wait += 1;
+        }
+    }
+    // Geometric(lambda) on {1, 2, ...} as 1 + floor(E / -log(1 - lambda)) with E ~ Exp(1)
+    // (drawn by ziggurat, which saves a logarithm); log1p only where 1 - lambda would lose
+    // digits. The float-to-int cast saturates.
+    let log_stay = if lambda < 0.01 {
+        (-lambda).ln_1p()
+    } else {
+        (1.0 - lambda).ln()
+    };
+    let e: f64 = Exp1.sample(rng);
+    let x = e / -log_stay;
+    ((x as u64).saturating_add(1), uniform(rng) * total)
 }
 
 /// Result of one step of a replicate.
@@ -325,10 +563,12 @@ pub(crate) enum Status {
 pub(crate) struct Replicate {
     pub(crate) k: Vec<u64>,
     variants: u64,
-    /// Per-deme sums and counts, one record per deme (one bounds check per access).
+    /// Sparse path: per-deme sums and counts, one record per deme, and the rates in a sum
+    /// tree (leaf `2 i` is `u_i`, leaf `2 i + 1` is `d_i`). Empty on the dense path.
     st: Vec<DemeSums>,
-    /// Rates: leaf `2 i` is `u_i`, leaf `2 i + 1` is `d_i`.
     tree: SumTree,
+    /// Dense path state; empty on the sparse path.
+    dense: Dense,
     /// Ticks so far (events or generations), and the tick of the last state change.
     ticks: u64,
     last_change: u64,
@@ -342,11 +582,18 @@ pub(crate) struct Replicate {
 impl Replicate {
     pub(crate) fn new(t: &Tables) -> Self {
         let m = t.demes();
+        let jump = t.kind != Kind::WrightFisher;
+        let (sparse_m, dense_m) = match (jump, t.rebuild_all) {
+            (false, _) => (0, 0),
+            (true, true) => (0, m),
+            (true, false) => (m, 0),
+        };
         Self {
             k: vec![0; m],
             variants: 0,
-            st: vec![DemeSums::default(); m],
-            tree: SumTree::new(2 * m),
+            st: vec![DemeSums::default(); sparse_m],
+            tree: SumTree::new(2 * sparse_m),
+            dense: Dense::new(dense_m),
             ticks: 0,
             last_change: 0,
             changes: 0,
@@ -364,15 +611,17 @@ impl Replicate {
         self.changes = 0;
         self.since_refresh = 0;
         self.arrivals.iter_mut().for_each(|x| *x = u64::MAX);
-        for (i, x) in self.next_arrival.iter_mut().enumerate() {
-            *x = t.arr_start[i];
-        }
+        self.next_arrival.copy_from_slice(&t.arr_start[..t.demes()]);
         match &t.resident {
             Some(base) => {
                 // copy the all-resident sums (O(m)), then add the variant incrementally
                 self.k.copy_from_slice(&base.k);
-                self.st.copy_from_slice(&base.st);
-                self.tree.clone_from(&base.tree);
+                if t.rebuild_all {
+                    self.dense.copy_from(&base.dense);
+                } else {
+                    self.st.copy_from_slice(&base.st);
+                    self.tree.clone_from(&base.tree);
+                }
                 self.variants = 0;
                 self.add_first(t, start);
             }
@@ -387,12 +636,12 @@ impl Replicate {
 
     fn add_first(&mut self, t: &Tables, start: usize) {
         match (t.code(), t.rebuild_all) {
-            (DB_DEME, true) => self.apply::<DB_DEME, true>(t, start, true),
-            (DB_DEME, false) => self.apply::<DB_DEME, false>(t, start, true),
-            (DB_NEIGHBOURHOOD, true) => self.apply::<DB_NEIGHBOURHOOD, true>(t, start, true),
-            (DB_NEIGHBOURHOOD, false) => self.apply::<DB_NEIGHBOURHOOD, false>(t, start, true),
-            (_, true) => self.apply::<BD, true>(t, start, true),
-            (_, false) => self.apply::<BD, false>(t, start, true),
+            (DB_DEME, true) => self.apply_dense::<DB_DEME>(t, start, true),
+            (DB_DEME, false) => self.apply::<DB_DEME>(t, start, true),
+            (DB_NEIGHBOURHOOD, true) => self.apply_dense::<DB_NEIGHBOURHOOD>(t, start, true),
+            (DB_NEIGHBOURHOOD, false) => self.apply::<DB_NEIGHBOURHOOD>(t, start, true),
+            (_, true) => self.apply_dense::<BD>(t, start, true),
+            (_, false) => self.apply::<BD>(t, start, true),
         }
     }
 
@@ -430,75 +679,120 @@ impl Replicate {
     /// Rebuilds all sums, counts and rates from the count vector.
     pub(crate) fn refresh(&mut self, t: &Tables) {
         match (t.code(), t.rebuild_all) {
-            (DB_DEME, true) => self.refresh_with::<DB_DEME, true>(t),
-            (DB_DEME, false) => self.refresh_with::<DB_DEME, false>(t),
-            (DB_NEIGHBOURHOOD, true) => self.refresh_with::<DB_NEIGHBOURHOOD, true>(t),
-            (DB_NEIGHBOURHOOD, false) => self.refresh_with::<DB_NEIGHBOURHOOD, false>(t),
-            (_, true) => self.refresh_with::<BD, true>(t),
-            (_, false) => self.refresh_with::<BD, false>(t),
+            (DB_DEME, true) => self.refresh_dense::<DB_DEME>(t),
+            (DB_DEME, false) => self.refresh_with::<DB_DEME>(t),
+            (DB_NEIGHBOURHOOD, true) => self.refresh_dense::<DB_NEIGHBOURHOOD>(t),
+            (DB_NEIGHBOURHOOD, false) => self.refresh_with::<DB_NEIGHBOURHOOD>(t),
+            (_, true) => self.refresh_dense::<BD>(t),
+            (_, false) => self.refresh_with::<BD>(t),
         }
     }
 
-    fn refresh_with<const K: u8, const ALL: bool>(&mut self, t: &Tables) {
+    /// `(P_i, Q_i, nv_i, nr_i)` of target `i` from the source values `(a, c)`, in source
+    /// order, with a sum whose source count is 0 set to exactly 0.
+    #[inline(always)]
+    fn target_sums(&self, t: &Tables, i: usize, a: &[f64], c: &[f64]) -> (f64, f64, u32, u32) {
+        target_sums(t, &self.k, i, a, c)
+    }
+}
+
+/// `(P_i, Q_i, nv_i, nr_i)` of target `i` for the counts `k` and source values `(a, c)`, in
+/// source order, with a sum whose source count is 0 set to exactly 0.
+fn target_sums(t: &Tables, k: &[u64], i: usize, a: &[f64], c: &[f64]) -> (f64, f64, u32, u32) {
+    {
+        let (mut p, mut q, mut nv, mut nr) = (0.0, 0.0, 0u32, 0u32);
+        for e in t.src_start[i]..t.src_start[i + 1] {
+            let (j, w) = (t.src_idx[e], t.src_w[e]);
+            p += w * a[j];
+            q += w * c[j];
+            nv += u32::from(k[j] > 0);
+            nr += u32::from(k[j] < t.n[j]);
+        }
+        (
+            if nv == 0 { 0.0 } else { p },
+            if nr == 0 { 0.0 } else { q },
+            nv,
+            nr,
+        )
+    }
+}
+
+impl Replicate {
+    fn refresh_with<const K: u8>(&mut self, t: &Tables) {
         self.since_refresh = 0;
-        for j in 0..t.demes() {
+        let m = t.demes();
+        for j in 0..m {
             let (a, c) = t.source_values::<K>(j, self.k[j]);
             self.st[j].a = a;
             self.st[j].c = c;
         }
-        for i in 0..t.demes() {
-            let (mut p, mut q, mut nv, mut nr) = (0.0, 0.0, 0u32, 0u32);
-            for e in t.src_start[i]..t.src_start[i + 1] {
-                let (j, w) = (t.src_idx[e], t.src_w[e]);
-                p += w * self.st[j].a;
-                q += w * self.st[j].c;
-                nv += u32::from(self.k[j] > 0);
-                nr += u32::from(self.k[j] < t.n[j]);
-            }
+        let a: Vec<f64> = self.st.iter().map(|x| x.a).collect();
+        let c: Vec<f64> = self.st.iter().map(|x| x.c).collect();
+        for i in 0..m {
+            let (p, q, nv, nr) = self.target_sums(t, i, &a, &c);
             self.st[i] = DemeSums {
-                p: if nv == 0 { 0.0 } else { p },
-                q: if nr == 0 { 0.0 } else { q },
+                p,
+                q,
                 nv,
                 nr,
                 ..self.st[i]
             };
-            self.update_rates::<K, ALL>(t, i);
+            self.update_rates::<K>(t, i);
         }
-        self.tree.rebuild();
+    }
+
+    fn refresh_dense<const K: u8>(&mut self, t: &Tables) {
+        self.since_refresh = 0;
+        let m = t.demes();
+        for j in 0..m {
+            let (a, c) = t.source_values::<K>(j, self.k[j]);
+            self.dense.a[j] = a;
+            self.dense.c[j] = c;
+            self.dense.kf[j] = as_f64(self.k[j]);
+        }
+        let mut dense = std::mem::take(&mut self.dense);
+        for i in 0..m {
+            let (p, q, nv, nr) = self.target_sums(t, i, &dense.a, &dense.c);
+            dense.p[i] = p;
+            dense.q[i] = q;
+            dense.nv[i] = nv;
+            dense.nr[i] = nr;
+        }
+        dense.rates_all::<K>(&t.nf, &t.inv_n);
+        self.dense = dense;
     }
 
     /// Rate of `k -> k + e_i` (times the denominator).
     #[cfg(test)]
     pub(crate) fn up(&self, i: usize) -> f64 {
-        self.tree.leaf(2 * i)
+        if self.dense.u.is_empty() {
+            self.tree.leaf(2 * i)
+        } else {
+            self.dense.u[i]
+        }
     }
 
     /// Rate of `k -> k - e_i` (times the denominator).
     #[cfg(test)]
     pub(crate) fn down(&self, i: usize) -> f64 {
-        self.tree.leaf(2 * i + 1)
+        if self.dense.d.is_empty() {
+            self.tree.leaf(2 * i + 1)
+        } else {
+            self.dense.d[i]
+        }
     }
 
     #[inline(always)]
-    fn update_rates<const K: u8, const ALL: bool>(&mut self, t: &Tables, i: usize) {
-        let p = self.st[i].p.max(0.0);
-        let q = self.st[i].q.max(0.0);
+    fn update_rates<const K: u8>(&mut self, t: &Tables, i: usize) {
         let ki = self.k[i];
-        let vacant = as_f64(t.n[i] - ki);
-        let held = as_f64(ki);
-        let (u, d) = match K {
-            DB_DEME => (vacant * p, held * q),
-            DB_NEIGHBOURHOOD => {
-                let s = p + q;
-                (vacant * p / s, held * q / s)
-            }
-            _ => (vacant * p * t.inv_n[i], held * q * t.inv_n[i]),
-        };
-        if ALL {
-            self.tree.set_pair_lazy(i, u, d);
-        } else {
-            self.tree.set_pair(i, u, d);
-        }
+        let (u, d) = rates::<K>(
+            self.st[i].p,
+            self.st[i].q,
+            as_f64(t.n[i] - ki),
+            as_f64(ki),
+            t.inv_n[i],
+        );
+        self.tree.set_pair(i, u, d);
     }
 
     #[inline(always)]
@@ -512,19 +806,28 @@ impl Replicate {
         self.next_arrival[i] = at;
     }
 
-    /// Applies `k_j -> k_j + 1` (`up`) or `k_j - 1` and updates the affected sums and rates.
+    /// `k_j -> k_j + 1` (`up`) or `k_j - 1`; returns the changes `(dv, dr)` of the counts of
+    /// sources holding variants and residents that `j` contributes to its targets.
     #[inline(always)]
-    fn apply<const K: u8, const ALL: bool>(&mut self, t: &Tables, j: usize, up: bool) {
+    fn step_count(&mut self, t: &Tables, j: usize, up: bool) -> (i32, i32) {
         let nj = t.n[j];
-        let (dv, dr): (i32, i32) = if up {
-            self.k[j] += 1;
+        let kj = &mut self.k[j];
+        if up {
+            *kj += 1;
             self.variants += 1;
-            (i32::from(self.k[j] == 1), -i32::from(self.k[j] == nj))
+            (i32::from(*kj == 1), -i32::from(*kj == nj))
         } else {
-            self.k[j] -= 1;
+            *kj -= 1;
             self.variants -= 1;
-            (-i32::from(self.k[j] == 0), i32::from(self.k[j] == nj - 1))
-        };
+            (-i32::from(*kj == 0), i32::from(*kj == nj - 1))
+        }
+    }
+
+    /// Sparse path: applies `k_j -> k_j +- 1` and updates the affected sums, rates and tree
+    /// paths.
+    #[inline(always)]
+    fn apply<const K: u8>(&mut self, t: &Tables, j: usize, up: bool) {
+        let (dv, dr) = self.step_count(t, j, up);
         let (a, c) = t.source_values::<K>(j, self.k[j]);
         let src = &mut self.st[j];
         let da = a - src.a;
@@ -548,11 +851,38 @@ impl Replicate {
                     target.q = 0.0;
                 }
             }
-            self.update_rates::<K, ALL>(t, i);
+            self.update_rates::<K>(t, i);
         }
-        self.update_rates::<K, ALL>(t, j);
-        if ALL {
-            self.tree.rebuild();
+        self.update_rates::<K>(t, j);
+        if up {
+            self.record_arrivals(t, j);
+        }
+    }
+
+    /// Dense path: applies `k_j -> k_j +- 1` and rewrites every target's sums and rates in
+    /// one pass over the dense column of `j`.
+    #[inline(always)]
+    fn apply_dense<const K: u8>(&mut self, t: &Tables, j: usize, up: bool) {
+        let (dv, dr) = self.step_count(t, j, up);
+        let kj = self.k[j];
+        let (a, c) = t.source_values::<K>(j, kj);
+        let dense = &mut self.dense;
+        dense.kf[j] = as_f64(kj);
+        let da = a - dense.a[j];
+        let dc = c - dense.c[j];
+        dense.a[j] = a;
+        dense.c[j] = c;
+        let m = t.demes();
+        let w = &t.wcol[j * m..(j + 1) * m];
+        if dv != 0 || dr != 0 {
+            let line = t.infl_start[j]..t.infl_start[j + 1];
+            for &i in &t.infl_target[line] {
+                dense.nv[i] = dense.nv[i].wrapping_add_signed(dv);
+                dense.nr[i] = dense.nr[i].wrapping_add_signed(dr);
+            }
+            dense.update::<K, true>(w, da, dc, &t.nf, &t.inv_n);
+        } else {
+            dense.update::<K, false>(w, da, dc, &t.nf, &t.inv_n);
         }
         if up {
             self.record_arrivals(t, j);
@@ -560,45 +890,47 @@ impl Replicate {
     }
 
     /// One state change of the death-birth or birth-death jump chain.
+    ///
+    /// The events up to and including the change number Geometric(`lambda`). When
+    /// `lambda >= DIRECT_FROM` the events are run one by one: each draws `v = U * denominator`
+    /// and changes the state iff `v < total`, so the count of events is Geometric(`lambda`)
+    /// and, given that the last one changed the state, its `v` is uniform on `[0, total)`
+    /// and independent of the count; that `v` picks the change. Below, the count is drawn as
+    /// `1 + floor(E / -ln(1 - lambda))` with `E ~ Exp(1)` and the change by a fresh uniform.
     #[inline(always)]
     pub(crate) fn jump_step<R: Rng, const K: u8, const ALL: bool>(
         &mut self,
         t: &Tables,
         rng: &mut R,
     ) -> Status {
-        let total = self.tree.total();
+        let total = if ALL {
+            self.dense.total
+        } else {
+            self.tree.total()
+        };
         if total <= 0.0 {
             // no event can change a non-absorbing state: frozen
             self.ticks = self.last_change;
             return Status::Done(End::Lost);
         }
+        let denom = self.denominator::<K>(t);
         let lambda = match K {
-            BD => total / self.denominator::<K>(t),
+            BD => total / denom,
             _ => total * t.inv_total,
         };
-        let wait = if lambda >= 1.0 {
-            1
-        } else {
-            // Geometric(lambda) on {1, 2, ...} as 1 + floor(E / -log(1 - lambda)) with
-            // E = -log U ~ Exp(1) (drawn by ziggurat, which saves a logarithm); log1p only
-            // where 1 - lambda would lose digits. The float-to-int cast saturates.
-            let log_stay = if lambda < 0.01 {
-                (-lambda).ln_1p()
-            } else {
-                (1.0 - lambda).ln()
-            };
-            let e: f64 = Exp1.sample(rng);
-            let x = e / -log_stay;
-            (x as u64).saturating_add(1)
-        };
+        let (wait, v) = draw_wait(rng, total, denom, lambda);
         self.ticks = self.ticks.saturating_add(wait);
         if self.ticks > t.max_ticks {
             self.ticks = t.max_ticks;
             return Status::Done(End::Unresolved);
         }
-        let v = uniform(rng) * total;
-        let leaf = self.tree.find(v);
-        self.apply::<K, ALL>(t, leaf >> 1, leaf & 1 == 0);
+        if ALL {
+            let (j, up) = self.dense.pick(v);
+            self.apply_dense::<K>(t, j, up);
+        } else {
+            let leaf = self.tree.find(v);
+            self.apply::<K>(t, leaf >> 1, leaf & 1 == 0);
+        }
         self.changes += 1;
         self.last_change = self.ticks;
         if self.variants == 0 {
@@ -613,7 +945,6 @@ impl Replicate {
         }
         Status::Running
     }
-
     /// One Wright-Fisher generation.
     pub(crate) fn generation<R: Rng>(&mut self, model: &Model, t: &Tables, rng: &mut R) -> Status {
         model.refill_probabilities(&self.k, &mut self.refill);
@@ -653,6 +984,36 @@ impl Replicate {
         }
     }
 
+    /// Runs a reset replicate on the small path of capacity `cap`.
+    fn run_small_any<R: Rng>(&mut self, t: &Tables, rng: &mut R, cap: usize) -> End {
+        match (t.code(), cap) {
+            (DB_DEME, 2) => self.run_small::<R, DB_DEME, 2>(t, rng),
+            (DB_DEME, 4) => self.run_small::<R, DB_DEME, 4>(t, rng),
+            (DB_DEME, 6) => self.run_small::<R, DB_DEME, 6>(t, rng),
+            (DB_DEME, 8) => self.run_small::<R, DB_DEME, 8>(t, rng),
+            (DB_DEME, 10) => self.run_small::<R, DB_DEME, 10>(t, rng),
+            (DB_DEME, 12) => self.run_small::<R, DB_DEME, 12>(t, rng),
+            (DB_DEME, 14) => self.run_small::<R, DB_DEME, 14>(t, rng),
+            (DB_DEME, _) => self.run_small::<R, DB_DEME, 16>(t, rng),
+            (DB_NEIGHBOURHOOD, 2) => self.run_small::<R, DB_NEIGHBOURHOOD, 2>(t, rng),
+            (DB_NEIGHBOURHOOD, 4) => self.run_small::<R, DB_NEIGHBOURHOOD, 4>(t, rng),
+            (DB_NEIGHBOURHOOD, 6) => self.run_small::<R, DB_NEIGHBOURHOOD, 6>(t, rng),
+            (DB_NEIGHBOURHOOD, 8) => self.run_small::<R, DB_NEIGHBOURHOOD, 8>(t, rng),
+            (DB_NEIGHBOURHOOD, 10) => self.run_small::<R, DB_NEIGHBOURHOOD, 10>(t, rng),
+            (DB_NEIGHBOURHOOD, 12) => self.run_small::<R, DB_NEIGHBOURHOOD, 12>(t, rng),
+            (DB_NEIGHBOURHOOD, 14) => self.run_small::<R, DB_NEIGHBOURHOOD, 14>(t, rng),
+            (DB_NEIGHBOURHOOD, _) => self.run_small::<R, DB_NEIGHBOURHOOD, 16>(t, rng),
+            (_, 2) => self.run_small::<R, BD, 2>(t, rng),
+            (_, 4) => self.run_small::<R, BD, 4>(t, rng),
+            (_, 6) => self.run_small::<R, BD, 6>(t, rng),
+            (_, 8) => self.run_small::<R, BD, 8>(t, rng),
+            (_, 10) => self.run_small::<R, BD, 10>(t, rng),
+            (_, 12) => self.run_small::<R, BD, 12>(t, rng),
+            (_, 14) => self.run_small::<R, BD, 14>(t, rng),
+            (_, _) => self.run_small::<R, BD, 16>(t, rng),
+        }
+    }
+
     /// Runs a fresh replicate to its end, drawing everything from `rng`.
     pub(crate) fn run<R: Rng>(
         &mut self,
@@ -665,7 +1026,16 @@ impl Replicate {
         let end = if self.variants == t.total {
             End::Fixed
         } else {
+            let small = if t.rebuild_all && t.kind != Kind::WrightFisher {
+                match t.demes() {
+                    m @ 1..=SMALL_MAX_DEMES => m + (m & 1),
+                    _ => 0,
+                }
+            } else {
+                0
+            };
             match (t.kind, t.rebuild_all) {
+                _ if small > 0 => self.run_small_any(t, rng, small),
                 (Kind::WrightFisher, _) => loop {
                     if let Status::Done(end) = self.generation(model, t, rng) {
                         break end;
@@ -748,6 +1118,80 @@ mod tests {
             }
         }
         assert!(checked > 200, "trajectories too short: {checked}");
+    }
+
+    /// The small path (fixed-size arrays, capacity 6 for up to 6 demes) against the model.
+    fn check_small_against_model(model: &Model, seed: u64) {
+        let mut t = Tables::new(model, Start::Deme(0), u64::MAX / 1024, &[0.5, 1.0]);
+        assert!(t.rebuild_all);
+        t.refresh_every = 7; // exercise the refresh of the small path too
+        let st = small::SmallTables::<6>::new(&t);
+        let mut rep = Replicate::new(&t);
+        let mut rng = ChaCha8Rng::seed_from_u64(seed);
+        let m = model.demes();
+        let (mut up, mut down) = (vec![0.0; m], vec![0.0; m]);
+        let mut checked = 0;
+        for round in 0..150 {
+            rep.reset(&t, round % m);
+            let mut s = small::Small::<6>::load(&rep, &t);
+            loop {
+                let k = &s.k[..m];
+                model.event_probabilities(k, &mut up, &mut down);
+                let variants: u64 = k.iter().sum();
+                let denom = match model.rule() {
+                    Rule::BirthDeath => t.r * variants as f64 + (t.total - variants) as f64,
+                    _ => t.totalf,
+                };
+                for i in 0..6 {
+                    let (want_u, want_d) = if i < m { (up[i], down[i]) } else { (0.0, 0.0) };
+                    for (want, got) in [(want_u, s.u[i] / denom), (want_d, s.d[i] / denom)] {
+                        assert_eq!(want == 0.0, got == 0.0, "{k:?} deme {i}");
+                        assert!(
+                            (want - got).abs() <= 1e-12 * want.abs().max(1e-3),
+                            "{k:?} deme {i}: {want} vs {got}"
+                        );
+                    }
+                }
+                checked += 1;
+                let status = match t.code() {
+                    DB_DEME => rep.small_step::<_, DB_DEME, 6>(&mut s, &st, &t, &mut rng),
+                    DB_NEIGHBOURHOOD => {
+                        rep.small_step::<_, DB_NEIGHBOURHOOD, 6>(&mut s, &st, &t, &mut rng)
+                    }
+                    _ => rep.small_step::<_, BD, 6>(&mut s, &st, &t, &mut rng),
+                };
+                if status != Status::Running {
+                    break;
+                }
+            }
+        }
+        assert!(checked > 200, "trajectories too short: {checked}");
+    }
+
+    #[test]
+    fn small_path_rates_equal_the_model_along_random_trajectories() {
+        let sparse = vec![
+            vec![0.6, 0.4, 0.0, 0.0],
+            vec![0.0, 0.5, 0.5, 0.0],
+            vec![0.0, 0.0, 0.7, 0.3],
+            vec![0.2, 0.0, 0.0, 0.8],
+        ];
+        let dense = vec![
+            vec![0.5, 0.3, 0.2],
+            vec![0.1, 0.6, 0.3],
+            vec![0.25, 0.25, 0.5],
+        ];
+        let mut seed = 101;
+        for rule in [Rule::DeathBirth, Rule::BirthDeath] {
+            for scope in [Scope::Deme, Scope::Neighbourhood] {
+                for s in [0.3, -0.2] {
+                    check_small_against_model(&model(rule, scope, vec![2, 3, 4], &dense, s), seed);
+                    let b = model(rule, scope, vec![3, 1, 4, 2], &sparse, s);
+                    check_small_against_model(&b, seed + 1);
+                    seed += 2;
+                }
+            }
+        }
     }
 
     #[test]

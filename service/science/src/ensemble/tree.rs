@@ -1,8 +1,7 @@
-//! A sum tree over non-negative weights: find the leaf where a point of `[0, total)` falls in
-//! `O(log m)` without branching on the data. Leaves change either one pair at a time with
-//! their ancestors recomputed (`O(log m)`, for sparse matrices), or all together followed by
-//! one bottom-up rebuild (`O(m)`, for few demes or dense matrices). Either way every parent
-//! is recomputed from its children, so the sums never drift from the leaves.
+//! A sum tree over non-negative weights (the sparse path of the jump chain): find the leaf
+//! where a point of `[0, total)` falls in `O(log m)` without branching on the data. Leaves
+//! change one pair at a time with their ancestors recomputed from their children
+//! (`O(log m)`), so the sums never drift from the leaves.
 
 /// Complete binary tree stored in an array; leaves start at `cap`.
 #[derive(Debug, Clone)]
@@ -27,48 +26,17 @@ impl SumTree {
         self.node[self.cap + i]
     }
 
-    /// Sets leaves `2 p` and `2 p + 1` without touching their ancestors (call
-    /// [`Self::rebuild`] afterwards).
-    #[inline(always)]
-    pub(crate) fn set_pair_lazy(&mut self, p: usize, a: f64, b: f64) {
-        let at = self.cap + 2 * p;
-        self.node[at] = a;
-        self.node[at + 1] = b;
-    }
-
     /// Sets leaves `2 p` and `2 p + 1` and recomputes their ancestors.
     #[inline(always)]
     pub(crate) fn set_pair(&mut self, p: usize, a: f64, b: f64) {
-        self.set_pair_lazy(p, a, b);
-        let mut at = (self.cap + 2 * p) >> 1;
+        let mut at = self.cap + 2 * p;
+        self.node[at] = a;
+        self.node[at + 1] = b;
+        at >>= 1;
         self.node[at] = a + b;
         while at > 1 {
             at >>= 1;
             self.node[at] = self.node[2 * at] + self.node[2 * at + 1];
-        }
-    }
-
-    /// Recomputes every parent from its children.
-    #[inline(always)]
-    pub(crate) fn rebuild(&mut self) {
-        if self.cap <= 8 {
-            let node = &mut self.node[..2 * self.cap];
-            for at in (1..node.len() / 2).rev() {
-                node[at] = node[2 * at] + node[2 * at + 1];
-            }
-            return;
-        }
-        // level by level: nodes [half, 2 half) from their children [2 half, 4 half)
-        let mut half = self.cap / 2;
-        while half >= 1 {
-            let (upper, lower) = self.node.split_at_mut(2 * half);
-            for (parent, pair) in upper[half..]
-                .iter_mut()
-                .zip(lower[..2 * half].chunks_exact(2))
-            {
-                *parent = pair[0] + pair[1];
-            }
-            half /= 2;
         }
     }
 
@@ -101,17 +69,10 @@ mod tests {
 
     #[test]
     fn the_tree_finds_the_leaf_holding_a_point() {
-        for lazy in [false, true] {
+        {
             let mut t = SumTree::new(6);
             for (p, (a, b)) in [(1.0, 0.0), (2.0, 0.5), (0.0, 0.0)].into_iter().enumerate() {
-                if lazy {
-                    t.set_pair_lazy(p, a, b);
-                } else {
-                    t.set_pair(p, a, b);
-                }
-            }
-            if lazy {
-                t.rebuild();
+                t.set_pair(p, a, b);
             }
             assert_eq!(t.total(), 3.5);
             assert_eq!(t.leaf(3), 0.5);

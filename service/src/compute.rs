@@ -16,7 +16,7 @@
 
 use crate::document::{RunResult, TimeUnits};
 use crate::spec::{MethodKind, ResolvedMethod, ValidatedJob};
-use demefix_science::ensemble::{self, ProgressObserver, StopReason};
+use demefix_science::ensemble::{self, Accumulator, EnsembleError, ProgressObserver, StopReason};
 use demefix_science::exact::{self, ExactError};
 use demefix_science::start::combine;
 use demefix_science::{well_mixed, Model, ModelError};
@@ -48,6 +48,9 @@ pub enum ComputeError {
     /// A model could not be built (validation should have prevented this).
     #[error("model: {0}")]
     Model(#[from] ModelError),
+    /// The ensemble refused its settings or its checkpoint (a checkpoint of another job).
+    #[error("ensemble: {0}")]
+    Ensemble(#[from] EnsembleError),
 }
 
 /// Total replicates the job's ensembles may run, for a progress bar (0 without ensembles).
@@ -85,6 +88,15 @@ fn model_at(job: &ValidatedJob, s: f64) -> Result<Model, ComputeError> {
     Ok(job.model().with_selection(s)?)
 }
 
+/// Where a job's ensembles stand: one accumulator per `(s, start)` cell begun so far, in job
+/// order (the last one may be unfinished). Everything in it is an integer, so a job resumed
+/// from a checkpoint ends with results byte-identical to an uninterrupted run.
+#[derive(Debug, Clone, Default, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
+pub struct EnsembleCheckpoint {
+    /// Accumulators of the cells begun, in the order the job lists them.
+    pub cells: Vec<Accumulator>,
+}
+
 /// Computes every result of `job`. Ensembles and the exact solver run on `pool`; the result
 /// does not depend on its number of threads.
 pub fn run(
@@ -93,6 +105,20 @@ pub fn run(
     observer: &dyn ProgressObserver,
     cancel: &AtomicBool,
 ) -> Result<Outcome, ComputeError> {
+    run_resumable(job, pool, observer, cancel, None, &mut |_| {})
+}
+
+/// [`run`], resuming the ensembles from `resume` and handing a checkpoint to `on_checkpoint`
+/// after every chunk (the caller commits it). Exact and approximation jobs never checkpoint.
+pub fn run_resumable(
+    job: &ValidatedJob,
+    pool: &rayon::ThreadPool,
+    observer: &dyn ProgressObserver,
+    cancel: &AtomicBool,
+    resume: Option<EnsembleCheckpoint>,
+    on_checkpoint: &mut dyn FnMut(&EnsembleCheckpoint),
+) -> Result<Outcome, ComputeError> {
+    let resume = resume.unwrap_or_default();
     match job.method() {
         ResolvedMethod::Exact { .. } => match run_exact(job, pool, cancel) {
             Ok(results) => Ok(Outcome {
@@ -103,7 +129,8 @@ pub fn run(
             Err(ComputeError::Exact(e @ ExactError::NotConverged { .. }))
                 if job.spec().method.kind == MethodKind::Auto =>
             {
-                let mut outcome = run_ensembles(job, pool, observer, cancel)?;
+                let mut outcome =
+                    run_ensembles(job, pool, observer, cancel, resume, on_checkpoint)?;
                 outcome.warnings.insert(
                     0,
                     format!("the exact method failed ({e}); method `auto` used ensembles instead"),
@@ -112,7 +139,9 @@ pub fn run(
             }
             Err(e) => Err(e),
         },
-        ResolvedMethod::Ensemble => run_ensembles(job, pool, observer, cancel),
+        ResolvedMethod::Ensemble => {
+            run_ensembles(job, pool, observer, cancel, resume, on_checkpoint)
+        }
         ResolvedMethod::Approximation => {
             let rule = job.spec().dynamics.rule;
             let total = job.population().total();
@@ -170,6 +199,8 @@ fn run_ensembles(
     pool: &rayon::ThreadPool,
     observer: &dyn ProgressObserver,
     cancel: &AtomicBool,
+    mut checkpoint: EnsembleCheckpoint,
+    on_checkpoint: &mut dyn FnMut(&EnsembleCheckpoint),
 ) -> Result<Outcome, ComputeError> {
     let config = job.ensemble_config().ok_or(ComputeError::MissingSeed)?;
     let rule = job.spec().dynamics.rule;
@@ -180,6 +211,7 @@ fn run_ensembles(
     let mut base = 0u64;
     let mut results = Vec::new();
     let mut warnings = Vec::new();
+    let mut cell = 0usize;
     for &s in job.selection() {
         let model = model_at(job, s)?;
         let wm = well_mixed::reference(rule, total, s);
@@ -192,7 +224,22 @@ fn run_ensembles(
                 base,
                 total: grand_total,
             };
-            let summary = ensemble::run(&model, start, &config, pool, &progress, cancel);
+            let resume = checkpoint.cells.get(cell).cloned();
+            let summary = ensemble::run_resumable(
+                &model,
+                start,
+                &config,
+                pool,
+                &progress,
+                cancel,
+                resume,
+                &mut |acc| {
+                    checkpoint.cells.truncate(cell);
+                    checkpoint.cells.push(acc.clone());
+                    on_checkpoint(&checkpoint);
+                },
+            )?;
+            cell += 1;
             if summary.stop == StopReason::Cancelled {
                 return Err(ComputeError::Cancelled);
             }

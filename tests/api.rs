@@ -608,6 +608,80 @@ async fn sigterm_puts_a_running_ensemble_back_in_the_queue_and_a_restart_finishe
     child.process.wait().unwrap();
 }
 
+/// Reliability promise 5: an ensemble killed mid-run resumes from its last committed chunk
+/// and ends byte-identical to an uninterrupted run of the same spec and seed.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn an_ensemble_killed_mid_run_resumes_to_a_byte_identical_result() {
+    let dir = TempDir::new("sigkill-mid-ensemble");
+    let client = reqwest::Client::new();
+    let job = ensemble_job(20_000, 500).to_string();
+    let mut child = spawn_child(&dir).await;
+    let run: Value = client
+        .post(format!("{}/v1/runs", child.base))
+        .header("content-type", "application/json")
+        .body(job.clone())
+        .send()
+        .await
+        .unwrap()
+        .json()
+        .await
+        .unwrap();
+    let id = run["id"].as_str().unwrap().to_owned();
+    let mut done_at_kill = 0;
+    for _ in 0..2_000 {
+        let r: Value = client
+            .get(format!("{}/v1/runs/{id}", child.base))
+            .send()
+            .await
+            .unwrap()
+            .json()
+            .await
+            .unwrap();
+        let done = r["progress"]["done"].as_u64().unwrap_or(0);
+        if r["status"] == "running" && done > 0 {
+            done_at_kill = done;
+            break;
+        }
+        tokio::time::sleep(Duration::from_millis(10)).await;
+    }
+    child.process.kill().unwrap(); // SIGKILL, mid-ensemble
+    child.process.wait().unwrap();
+    assert!(
+        done_at_kill > 0,
+        "the ensemble had committed chunks when it was killed"
+    );
+
+    let mut child = spawn_child(&dir).await;
+    let resumed = wait_finished(&client, &child.base, &id, Duration::from_secs(180)).await;
+    assert_eq!(resumed["status"], "succeeded", "{resumed:#}");
+    assert!(
+        done_at_kill < resumed["progress"]["total"].as_u64().unwrap(),
+        "the kill came before the end of the run"
+    );
+
+    // The same job again, computed from scratch by the same server.
+    let clean: Value = client
+        .post(format!("{}/v1/runs", child.base))
+        .header("content-type", "application/json")
+        .body(job)
+        .send()
+        .await
+        .unwrap()
+        .json()
+        .await
+        .unwrap();
+    let clean_id = clean["id"].as_str().unwrap().to_owned();
+    let clean = wait_finished(&client, &child.base, &clean_id, Duration::from_secs(180)).await;
+    assert_eq!(clean["status"], "succeeded", "{clean:#}");
+    assert_eq!(
+        resumed["results"].to_string(),
+        clean["results"].to_string(),
+        "the resumed run's results are byte-identical to a clean run's"
+    );
+    child.process.kill().unwrap();
+    child.process.wait().unwrap();
+}
+
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn an_expired_lease_is_rescued_and_the_stale_worker_is_fenced_out() {
     use demefix::db::{Store, Submitted};

@@ -4,15 +4,17 @@
 //! This module owns the life of a claimed run: the lease token handed out by
 //! [`Store::claim`] (which also rescues runs whose lease expired), the heartbeat task that
 //! extends the lease, publishes progress and notices a cancellation request or a lost lease,
-//! the computation itself (`compute::run` on a blocking thread inside the shared rayon pool,
+//! the computation itself (`compute::run_resumable` on a blocking thread inside the shared rayon pool,
 //! never on the async runtime), and the completion, which the store accepts only while the
 //! token still holds the lease (fencing). On shutdown a running computation is stopped at its
 //! next chunk boundary and the run goes back to the queue, neither lost nor failed.
 //!
-//! Ensembles are run whole: a run interrupted by a crash or a shutdown starts again from
-//! replicate 0 when it is claimed again (the result is the same, only the time is lost).
+//! Ensembles commit a checkpoint (every cell's integer accumulator, `compute::EnsembleCheckpoint`)
+//! after every chunk, guarded by the lease token; a run interrupted by a crash or a shutdown
+//! resumes from its last committed chunk when it is claimed again and ends byte-identical to
+//! an uninterrupted run.
 
-use crate::compute::{self, ComputeError};
+use crate::compute::{self, ComputeError, EnsembleCheckpoint};
 use crate::config::Config;
 use crate::db::{Claim, Store};
 use crate::domain::Finish;
@@ -145,10 +147,37 @@ impl Workers {
         let threads = pool.current_num_threads();
         let span = tracing::Span::current();
         let compute_flags = flags.clone();
+        let resume = claim.checkpoint.as_deref().and_then(|text| {
+            serde_json::from_str::<EnsembleCheckpoint>(text)
+                .map_err(|e| warn!(error = %e, "unreadable checkpoint ignored; starting afresh"))
+                .ok()
+        });
+        if let Some(cp) = &resume {
+            info!(
+                cells = cp.cells.len(),
+                "resuming from the last committed chunk"
+            );
+        }
+        let committer = Committer {
+            runtime: tokio::runtime::Handle::current(),
+            store: self.store.clone(),
+            id: claim.id.clone(),
+            token: token.clone(),
+            lease: self.config.lease,
+            flags: flags.clone(),
+        };
         let computed = tokio::task::spawn_blocking(move || {
             let _entered = span.enter();
             let observer = Observer(&compute_flags);
-            let outcome = compute::run(&job, &pool, &observer, &compute_flags.cancel);
+            let cancel = &compute_flags.cancel;
+            let mut commit = |cp: &EnsembleCheckpoint| committer.commit(cp);
+            let had_checkpoint = resume.is_some();
+            let mut outcome =
+                compute::run_resumable(&job, &pool, &observer, cancel, resume, &mut commit);
+            if had_checkpoint && matches!(outcome, Err(ComputeError::Ensemble(_))) {
+                warn!("the checkpoint does not belong to this job's settings; starting afresh");
+                outcome = compute::run_resumable(&job, &pool, &observer, cancel, None, &mut commit);
+            }
             (job, outcome)
         })
         .await;
@@ -215,6 +244,47 @@ struct RunFlags {
     lease_lost: AtomicBool,
     /// Replicates done so far.
     done: AtomicU64,
+}
+
+/// Commits ensemble checkpoints from the computing thread, through the lease token.
+struct Committer {
+    runtime: tokio::runtime::Handle,
+    store: Store,
+    id: String,
+    token: String,
+    lease: Duration,
+    flags: Arc<RunFlags>,
+}
+
+impl Committer {
+    /// Writes `checkpoint` (and the progress) if this worker still holds the lease; raises
+    /// the cancellation flag when the lease is lost or a client asked to cancel.
+    fn commit(&self, checkpoint: &EnsembleCheckpoint) {
+        let text = match serde_json::to_string(checkpoint) {
+            Ok(text) => text,
+            Err(e) => return error!(error = %e, "cannot serialise the checkpoint"),
+        };
+        let done = self.flags.done.load(Ordering::Relaxed);
+        let written = self.runtime.block_on(self.store.heartbeat(
+            &self.id,
+            &self.token,
+            self.lease,
+            done,
+            Some(&text),
+        ));
+        match written {
+            Ok(Some(false)) => {}
+            Ok(Some(true)) => {
+                self.flags.user_cancel.store(true, Ordering::SeqCst);
+                self.flags.cancel.store(true, Ordering::SeqCst);
+            }
+            Ok(None) => {
+                self.flags.lease_lost.store(true, Ordering::SeqCst);
+                self.flags.cancel.store(true, Ordering::SeqCst);
+            }
+            Err(e) => warn!(error = %e, "checkpoint not committed; the next chunk will try again"),
+        }
+    }
 }
 
 struct Observer<'a>(&'a RunFlags);

@@ -46,16 +46,15 @@ fn islands(sizes: &[u64], stay: f64, rule: Rule, s: f64) -> Model {
     .unwrap()
 }
 
-/// A 20-node cycle with chords `i -- i + 7` (every node degree 4), one individual per node,
-/// death-birth with neighbourhood scope: 2^20 states.
-fn chorded_cycle() -> Model {
-    let n = 20usize;
+/// An `n`-node cycle with chords `i -- i + chord` (every node degree 4), one individual per
+/// node, death-birth with neighbourhood scope: 2^n states.
+fn chorded_cycle(n: usize, chord: usize) -> Model {
     let rows: Vec<Vec<f64>> = (0..n)
         .map(|i| {
             (0..n)
                 .map(|j| {
                     let d = (i + n - j) % n;
-                    if [1, 7, n - 1, n - 7].contains(&d) {
+                    if [1, chord, n - 1, n - chord].contains(&d) {
                         1.0
                     } else {
                         0.0
@@ -77,18 +76,22 @@ fn case(name: &str) -> Option<Model> {
         "islands_1e5_birth_death" => islands(&[45, 46, 47], 0.9, Rule::BirthDeath, 0.01),
         "islands_1e6" => islands(&[99, 99, 99], 0.9, Rule::DeathBirth, 0.01),
         "islands_1e6_birth_death" => islands(&[99, 99, 99], 0.9, Rule::BirthDeath, 0.01),
-        "graph_2e20" => chorded_cycle(),
+        "graph_2e13" => chorded_cycle(13, 5),
+        "graph_2e17" => chorded_cycle(17, 6),
+        "graph_2e20" => chorded_cycle(20, 7),
         _ => return None,
     })
 }
 
-const CASES: [&str; 7] = [
+const CASES: [&str; 9] = [
     "islands_1e4",
     "islands_1e5_two_demes",
     "islands_1e5",
     "islands_1e5_birth_death",
     "islands_1e6",
     "islands_1e6_birth_death",
+    "graph_2e13",
+    "graph_2e17",
     "graph_2e20",
 ];
 

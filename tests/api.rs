@@ -543,7 +543,7 @@ async fn sigterm_puts_a_running_ensemble_back_in_the_queue_and_a_restart_finishe
     let dir = TempDir::new("sigterm");
     let client = reqwest::Client::new();
     let mut child = spawn_child(&dir).await;
-    let job = ensemble_job(400_000, 1_000);
+    let job = ensemble_job(40_000, 500);
     let run: Value = client
         .post(format!("{}/v1/runs", child.base))
         .header("content-type", "application/json")

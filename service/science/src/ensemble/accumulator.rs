@@ -150,7 +150,7 @@ impl Accumulator {
             }
             self.push(outcome);
             if let Some(h) = target_half_width {
-                if self.next % EARLY_STOP_GRID == 0 {
+                if self.next.is_multiple_of(EARLY_STOP_GRID) {
                     let (lo, hi) = self.interval();
                     if (hi - lo) / 2.0 <= h {
                         self.target_reached = true;

@@ -1,11 +1,13 @@
 //! The ensemble driver: bit-identical results for any thread count, chunk size and across a
 //! checkpoint; unresolved replicates; cancellation; reducible matrices.
 
+mod common;
+use common::model;
 use demefix_science::ensemble::{
     run, run_resumable, Accumulator, EnsembleConfig, EnsembleSummary, NoProgress, StopReason,
     EARLY_STOP_GRID,
 };
-use demefix_science::{Model, Population, Rule, Scope, Start, StochasticMatrix};
+use demefix_science::{Model, Rule, Scope, Start};
 use std::sync::atomic::{AtomicBool, Ordering};
 
 fn pool(threads: usize) -> rayon::ThreadPool {
@@ -13,18 +15,6 @@ fn pool(threads: usize) -> rayon::ThreadPool {
         .num_threads(threads)
         .build()
         .unwrap()
-}
-
-fn model(sizes: Vec<u64>, rows: &[Vec<f64>], rule: Rule, scope: Scope, s: f64) -> Model {
-    let pop = Population::new(sizes).unwrap();
-    Model::new(
-        &pop,
-        StochasticMatrix::from_weights(rows).unwrap(),
-        rule,
-        scope,
-        s,
-    )
-    .unwrap()
 }
 
 fn three_demes(rule: Rule) -> Model {

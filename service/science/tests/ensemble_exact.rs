@@ -2,21 +2,11 @@
 //! matrices, unequal sizes, all three rules and both scopes. Fixation probability and mean
 //! conditional fixation time must agree within 4.5 standard errors (fixed seeds).
 
+mod common;
+use common::model;
 use demefix_science::ensemble::{End, EnsembleConfig, EnsembleJob};
 use demefix_science::exact::{self, ExactConfig};
-use demefix_science::{Model, Population, Rule, Scope, Start, StochasticMatrix};
-
-fn model(sizes: Vec<u64>, rows: &[Vec<f64>], rule: Rule, scope: Scope, s: f64) -> Model {
-    let pop = Population::new(sizes).unwrap();
-    Model::new(
-        &pop,
-        StochasticMatrix::from_weights(rows).unwrap(),
-        rule,
-        scope,
-        s,
-    )
-    .unwrap()
-}
+use demefix_science::{Model, Rule, Scope, Start};
 
 fn mean_se(x: &[f64]) -> (f64, f64) {
     let n = x.len() as f64;

@@ -1,8 +1,10 @@
 //! Ensembles against closed forms and published check values (references.md §1, §2, §4).
 //! Every comparison allows 4.5 standard errors of the estimate, with fixed seeds.
 
+mod common;
+use common::{model, star};
 use demefix_science::ensemble::{End, EnsembleConfig, EnsembleJob};
-use demefix_science::{Model, Population, Rule, Scope, Start, StochasticMatrix};
+use demefix_science::{Model, Rule, Scope, Start};
 
 fn pool() -> rayon::ThreadPool {
     rayon::ThreadPoolBuilder::new()
@@ -20,18 +22,6 @@ fn config(seed: u64, replicates: u64) -> EnsembleConfig {
         max_generations: 1_000_000,
         arrival_fractions: vec![],
     }
-}
-
-fn model(sizes: Vec<u64>, rows: &[Vec<f64>], rule: Rule, scope: Scope, s: f64) -> Model {
-    let pop = Population::new(sizes).unwrap();
-    Model::new(
-        &pop,
-        StochasticMatrix::from_weights(rows).unwrap(),
-        rule,
-        scope,
-        s,
-    )
-    .unwrap()
 }
 
 /// Estimates from `replicates` replicates: (fixation probability, its standard error at the
@@ -167,17 +157,6 @@ fn haploid_wright_fisher_matches_the_exact_chain_values() {
         "WF N=100 s=0.01 absorption",
     );
     assert_time(e.fix_mean, e.fix_se, 186.747389, "WF N=100 s=0.01 fixation");
-}
-
-fn star(leaves: usize) -> Vec<Vec<f64>> {
-    // node 0 is the centre; undirected star, no self-loops
-    (0..=leaves)
-        .map(|i| {
-            (0..=leaves)
-                .map(|j| if (i == 0) != (j == 0) { 1.0 } else { 0.0 })
-                .collect()
-        })
-        .collect()
 }
 
 #[test]

@@ -1,6 +1,8 @@
 //! The exact method against published closed forms and check values (references.md) and
 //! against exact identities of the model.
 
+mod common;
+use common::{complete, cycle, star};
 use demefix_science::exact::{self, ExactConfig, ExactError, SolverChoice};
 use demefix_science::reach;
 use demefix_science::start::{self, DemeAnswer};
@@ -45,46 +47,6 @@ fn moran(r: f64, n: u64) -> f64 {
     } else {
         (1.0 - 1.0 / r) / (1.0 - r.powi(-(n as i32)))
     }
-}
-
-/// Adjacency rows of a star with `leaves` leaves, node 0 the centre.
-fn star(leaves: usize) -> Vec<Vec<f64>> {
-    let n = leaves + 1;
-    (0..n)
-        .map(|i| {
-            (0..n)
-                .map(|j| {
-                    if i != j && (i == 0 || j == 0) {
-                        1.0
-                    } else {
-                        0.0
-                    }
-                })
-                .collect()
-        })
-        .collect()
-}
-
-fn cycle(n: usize) -> Vec<Vec<f64>> {
-    (0..n)
-        .map(|i| {
-            (0..n)
-                .map(|j| {
-                    if (i + 1) % n == j || (j + 1) % n == i {
-                        1.0
-                    } else {
-                        0.0
-                    }
-                })
-                .collect()
-        })
-        .collect()
-}
-
-fn complete(n: usize) -> Vec<Vec<f64>> {
-    (0..n)
-        .map(|i| (0..n).map(|j| if i == j { 0.0 } else { 1.0 }).collect())
-        .collect()
 }
 
 #[test]

@@ -2,9 +2,12 @@
 //!
 //! `cargo run --release -p demefix-science --example exact_scaling` runs every case in its own
 //! child process (so that each peak RSS is its own); `... -- CASE [direct|iterative]` runs one.
+//! With `--sensitivity` anywhere, each case also computes the kernel gradients of the
+//! uniform-start answers (`exact::sensitivity`: the forward systems plus two adjoint solves).
 
 use demefix_science::exact::{self, ExactConfig, SolverChoice};
-use demefix_science::{Model, Population, Rule, Scope, StochasticMatrix};
+use demefix_science::sensitivity::rank_by_effect;
+use demefix_science::{Model, Population, Rule, Scope, Start, StochasticMatrix};
 use std::process::Command;
 use std::time::Instant;
 
@@ -104,6 +107,34 @@ fn peak_rss_mib() -> f64 {
         .map_or(f64::NAN, |kb| kb / 1024.0)
 }
 
+fn run_sensitivity(name: &str, solver: SolverChoice) {
+    let model = case(name).expect("unknown case");
+    let config = ExactConfig {
+        solver,
+        ..ExactConfig::default()
+    };
+    let weights = Start::Uniform.deme_weights(&model);
+    let started = Instant::now();
+    let got = exact::sensitivity(&model, &config, &weights);
+    let seconds = started.elapsed().as_secs_f64();
+    match got {
+        Ok(sens) => {
+            let links = rank_by_effect(sens.d_fixation_probability.link_effects(model.rule()));
+            let top = links.first().map_or(f64::NAN, |l| l.derivative);
+            println!(
+                "{name:<24} sensitivity states {:>8} {:<16} iters {:?} residual {:.1e} time {seconds:>7.2} s peak RSS {:>7.0} MiB  links {} largest effect {top:.6e}",
+                sens.report.states,
+                sens.report.solver,
+                sens.report.iterations,
+                sens.report.relative_residual,
+                peak_rss_mib(),
+                links.len(),
+            );
+        }
+        Err(e) => println!("{name:<24} sensitivity failed after {seconds:.2} s: {e}"),
+    }
+}
+
 fn run(name: &str, solver: SolverChoice) {
     let model = case(name).expect("unknown case");
     let mut config = ExactConfig {
@@ -136,19 +167,30 @@ fn run(name: &str, solver: SolverChoice) {
 }
 
 fn main() {
-    let args: Vec<String> = std::env::args().skip(1).collect();
+    let all: Vec<String> = std::env::args().skip(1).collect();
+    let sensitivity = all.iter().any(|a| a == "--sensitivity");
+    let args: Vec<String> = all.into_iter().filter(|a| a != "--sensitivity").collect();
     let solver = match args.get(1).map(String::as_str) {
         Some("direct") => SolverChoice::Direct,
         Some("iterative") => SolverChoice::Iterative,
         _ => SolverChoice::Auto,
     };
     if let Some(name) = args.first() {
-        run(name, solver);
+        if sensitivity {
+            run_sensitivity(name, solver);
+        } else {
+            run(name, solver);
+        }
         return;
     }
     let exe = std::env::current_exe().expect("own path");
     for name in CASES {
-        let status = Command::new(&exe).arg(name).status().expect("child runs");
+        let mut command = Command::new(&exe);
+        command.arg(name);
+        if sensitivity {
+            command.args(["auto", "--sensitivity"]);
+        }
+        let status = command.status().expect("child runs");
         if !status.success() {
             println!("{name:<24} child process failed: {status}");
         }

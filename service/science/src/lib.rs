@@ -11,12 +11,14 @@
 #![deny(missing_docs)]
 #![forbid(unsafe_code)]
 
+pub mod approx;
 pub mod ensemble;
 pub mod exact;
 pub mod migration;
 pub mod model;
 pub mod population;
 pub mod reach;
+pub mod sensitivity;
 pub mod start;
 pub mod stats;
 pub mod weak;

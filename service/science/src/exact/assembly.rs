@@ -82,6 +82,39 @@ impl EventSystem {
         system
     }
 
+    /// `A^T` in the same form (diagonal and frozen flags unchanged; right-hand side 0).
+    pub(crate) fn transposed(&self) -> Self {
+        let n = self.dim();
+        let mut count = vec![0usize; n + 1];
+        for &c in &self.col {
+            count[c as usize + 1] += 1;
+        }
+        for i in 0..n {
+            count[i + 1] += count[i];
+        }
+        let row_start = count.clone();
+        let mut next = count;
+        let mut col = vec![0u32; self.col.len()];
+        let mut prob = vec![0.0; self.prob.len()];
+        // rows visited in ascending order, so each transposed row's columns ascend
+        for row in 0..n {
+            for e in self.row_start[row]..self.row_start[row + 1] {
+                let c = self.col[e] as usize;
+                col[next[c]] = row as u32;
+                prob[next[c]] = self.prob[e];
+                next[c] += 1;
+            }
+        }
+        Self {
+            diag: self.diag.clone(),
+            row_start,
+            col,
+            prob,
+            to_fixation: vec![0.0; n],
+            frozen: self.frozen.clone(),
+        }
+    }
+
     /// Number of unknowns.
     pub(crate) fn dim(&self) -> usize {
         self.diag.len()

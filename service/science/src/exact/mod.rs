@@ -15,6 +15,7 @@
 
 mod assembly;
 mod dense;
+mod gradient;
 mod levels;
 mod precond;
 mod space;
@@ -22,6 +23,7 @@ mod sparse;
 
 use crate::model::{Model, Rule};
 use crate::reach;
+use crate::sensitivity::KernelPartials;
 use crate::start::DemeAnswer;
 use rayon::prelude::*;
 use space::{SpreadClosure, StateSpace};
@@ -99,6 +101,9 @@ pub enum ExactError {
         /// The limit that applies to this rule.
         limit: u64,
     },
+    /// The requested computation is not available for this rule.
+    #[error("{0}")]
+    Unsupported(&'static str),
     /// The linear solver failed to reach the tolerance.
     #[error("the linear solver did not converge (relative residual {residual:e})")]
     NotConverged {
@@ -153,17 +158,38 @@ pub fn estimated_fill(model: &Model) -> Option<f64> {
     Some(space.transient() as f64 * space.bandwidth() as f64)
 }
 
-/// Solves the chain for fixation probability, mean absorption time and mean conditional
-/// fixation time from a single variant in each deme.
-pub fn solve(model: &Model, config: &ExactConfig) -> Result<ExactSolution, ExactError> {
+/// The checked size and the numbering of the chain's state space.
+fn state_space(model: &Model, config: &ExactConfig) -> Result<(u64, StateSpace), ExactError> {
     let states = check_size(model, config)?;
     let space = StateSpace::new(model.sizes()).ok_or(ExactError::TooManyStates {
         states: Some(states),
         limit: INDEX_LIMIT,
     })?;
-    let failure = |f: sparse::SolveFailure| match f {
+    Ok((states, space))
+}
+
+fn failure(f: sparse::SolveFailure) -> ExactError {
+    match f {
         sparse::SolveFailure::Residual(residual) => ExactError::NotConverged { residual },
-    };
+    }
+}
+
+/// Whether the event system of `space` is factorised directly (see [`DIRECT_FILL_LIMIT`]
+/// and [`DIRECT_WORK_LIMIT`]).
+fn use_direct(space: &StateSpace, config: &ExactConfig) -> bool {
+    let fill = space.transient() as f64 * space.bandwidth() as f64;
+    let work = fill * space.bandwidth() as f64;
+    match config.solver {
+        SolverChoice::Direct => true,
+        SolverChoice::Iterative => false,
+        SolverChoice::Auto => fill <= DIRECT_FILL_LIMIT && work <= DIRECT_WORK_LIMIT,
+    }
+}
+
+/// Solves the chain for fixation probability, mean absorption time and mean conditional
+/// fixation time from a single variant in each deme.
+pub fn solve(model: &Model, config: &ExactConfig) -> Result<ExactSolution, ExactError> {
+    let (states, space) = state_space(model, config)?;
     let (mut solutions, solver, nonzeros) = if space.transient() == 0 {
         let empty = sparse::Solutions {
             h: Vec::new(),
@@ -181,15 +207,8 @@ pub fn solve(model: &Model, config: &ExactConfig) -> Result<ExactSolution, Exact
             }
             Rule::DeathBirth | Rule::BirthDeath => {
                 let system = assembly::EventSystem::assemble(model, &space);
-                let fill = space.transient() as f64 * space.bandwidth() as f64;
-                let work = fill * space.bandwidth() as f64;
-                let use_direct = match config.solver {
-                    SolverChoice::Direct => true,
-                    SolverChoice::Iterative => false,
-                    SolverChoice::Auto => fill <= DIRECT_FILL_LIMIT && work <= DIRECT_WORK_LIMIT,
-                };
                 let nonzeros = system.nonzeros();
-                if use_direct {
+                if use_direct(&space, config) {
                     (
                         sparse::direct(&system).map_err(failure)?,
                         "sparse_lu",
@@ -279,4 +298,108 @@ fn clear_unfixable(model: &Model, space: &StateSpace, solutions: &mut sparse::So
                 space.advance(&mut k);
             }
         });
+}
+
+/// Exact answers for one start weighting, with their partial derivatives with respect to the
+/// kernel (at [`KernelPartials::structural_entries`]).
+#[derive(Debug, Clone, PartialEq)]
+pub struct ExactSensitivity {
+    /// The start-weighted answer (as [`crate::start::combine`] mixes the per-deme ones).
+    pub answer: DemeAnswer,
+    /// Partials of the fixation probability.
+    pub d_fixation_probability: KernelPartials,
+    /// Partials of the mean absorption time, in generations.
+    pub d_mean_absorption_generations: KernelPartials,
+    /// Partials of the mean conditional fixation time, in generations (all `NaN` when
+    /// fixation is impossible).
+    pub d_mean_fixation_generations: KernelPartials,
+    /// Solver details (the residual covers the adjoint systems too).
+    pub report: SolverReport,
+}
+
+/// The exact answers for a variant starting in deme `k` with probability `weights[k]`, and
+/// their gradients with respect to every kernel entry, from one factorisation (or, on the
+/// iterative path, two extra adjoint solves): see [`gradient`] for the formulas. Death-birth and
+/// birth-death only.
+pub fn sensitivity(
+    model: &Model,
+    config: &ExactConfig,
+    weights: &[f64],
+) -> Result<ExactSensitivity, ExactError> {
+    if model.rule() == Rule::WrightFisher {
+        return Err(ExactError::Unsupported(
+            "exact sensitivities are computed for death-birth and birth-death only",
+        ));
+    }
+    assert_eq!(weights.len(), model.demes(), "one weight per deme");
+    let (states, space) = state_space(model, config)?;
+    if space.transient() == 0 {
+        return Err(ExactError::Unsupported(
+            "a population of one individual has no chain to differentiate",
+        ));
+    }
+    let entries = KernelPartials::structural_entries(model.kernel());
+    let m = model.demes();
+    // The objective: the weighted single-variant states. A start that cannot fix reaches only
+    // states where `h` is exactly 0 (after `clear_unfixable`), so it adds nothing to the
+    // fixation partials and its share of the absorption time is kept.
+    let mut c = vec![0.0; space.transient()];
+    for (deme, &weight) in weights.iter().enumerate() {
+        let start = space.single(deme);
+        if weight != 0.0 && start != space.fixed() {
+            c[start - 1] += weight;
+        }
+    }
+    let system = assembly::EventSystem::assemble(model, &space);
+    let (mut solutions, pair, solver) = if use_direct(&space, config) {
+        let (solutions, pair) = sparse::direct_with_adjoint(&system, Some(&c)).map_err(failure)?;
+        (solutions, pair.expect("asked for the adjoint"), "sparse_lu")
+    } else {
+        let preconditioner = ITERATIVE_PRECONDITIONER;
+        let solutions = sparse::iterative(&system, &space, preconditioner, config.tolerance)
+            .map_err(failure)?;
+        let pair = sparse::iterative_adjoint(&system, &space, preconditioner, &c, config.tolerance)
+            .map_err(failure)?;
+        (solutions, pair, preconditioner.solver_name())
+    };
+    clear_unfixable(model, &space, &mut solutions);
+    let fields = gradient::Fields {
+        h: &solutions.h,
+        t: &solutions.t,
+        w: &solutions.w,
+        g: &pair.g,
+        u: &pair.u,
+    };
+    let partials = gradient::partials(model, &space, &fields, &entries);
+    let dot = |x: &[f64]| c.iter().zip(x).map(|(a, b)| a * b).sum::<f64>();
+    let (h, t, w) = (dot(&solutions.h), dot(&solutions.t), dot(&solutions.w));
+    let steps = model.total() as f64;
+    let tau = if h > 0.0 { w / h } else { f64::NAN };
+    let d_tau: Vec<f64> = partials
+        .w
+        .iter()
+        .zip(&partials.h)
+        .map(|(dw, dh)| (dw - tau * dh) / h / steps)
+        .collect();
+    let d_t: Vec<f64> = partials.t.iter().map(|x| x / steps).collect();
+    Ok(ExactSensitivity {
+        answer: DemeAnswer {
+            fixation_probability: h,
+            mean_absorption_generations: t / steps,
+            mean_fixation_generations: tau / steps,
+        },
+        d_fixation_probability: KernelPartials::from_values(m, &entries, &partials.h),
+        d_mean_absorption_generations: KernelPartials::from_values(m, &entries, &d_t),
+        d_mean_fixation_generations: KernelPartials::from_values(m, &entries, &d_tau),
+        report: SolverReport {
+            solver: solver.to_string(),
+            relative_residual: solutions.residual.max(pair.residual),
+            states,
+            nonzeros: system.nonzeros() as u64,
+            iterations: match (solutions.iterations, pair.iterations) {
+                (Some(a), Some(b)) => Some(a + b),
+                _ => None,
+            },
+        },
+    })
 }

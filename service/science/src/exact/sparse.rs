@@ -71,6 +71,32 @@ fn ones(system: &EventSystem) -> Vec<f64> {
 
 /// Solves the three systems with one sparse LU factorisation.
 pub(crate) fn direct(system: &EventSystem) -> Result<Solutions, SolveFailure> {
+    direct_with_adjoint(system, None).map(|(solutions, _)| solutions)
+}
+
+/// The adjoint pair of a weighted objective `c · h`: `A^T g = c` and `A^T u = g`.
+///
+/// `g` holds the expected visits to each transient state from the weighted start (the rows
+/// of the fundamental matrix `(I - Q)^-1`, Kemeny & Snell 1960, weighted by `c`); `u` is what
+/// the gradient of `c · w` needs for the `h` on the right-hand side of `A w = h`.
+#[derive(Debug, Clone)]
+pub(crate) struct AdjointPair {
+    /// Solution of `A^T g = c`.
+    pub(crate) g: Vec<f64>,
+    /// Solution of `A^T u = g`.
+    pub(crate) u: Vec<f64>,
+    /// Largest achieved relative residual of the two systems.
+    pub(crate) residual: f64,
+    /// Iterations of the iterative solver (summed), `None` for direct.
+    pub(crate) iterations: Option<usize>,
+}
+
+/// As [`direct`], and with `adjoint = Some(c)` also the [`AdjointPair`] of `c`, all from one
+/// factorisation.
+pub(crate) fn direct_with_adjoint(
+    system: &EventSystem,
+    adjoint: Option<&[f64]>,
+) -> Result<(Solutions, Option<AdjointPair>), SolveFailure> {
     let n = system.dim();
     // The compressed rows of A are the compressed columns of A^T: factor A^T and solve with
     // its transpose. Row-diagonal dominance of A is column dominance of A^T, for which the
@@ -132,12 +158,117 @@ pub(crate) fn direct(system: &EventSystem) -> Result<Solutions, SolveFailure> {
     if residual.is_nan() || residual > ACCEPTED_RESIDUAL {
         return Err(SolveFailure::Residual(residual));
     }
-    Ok(Solutions {
-        h,
-        t,
-        w,
-        residual,
-        iterations: None,
+    let pair = match adjoint {
+        None => None,
+        Some(c) => {
+            // `lu` factors A^T, so the plain solve is the adjoint one.
+            let mut g_mat = Mat::<f64>::from_fn(n, 1, |i, _| c[i]);
+            lu.solve_in_place(g_mat.as_mut());
+            let g: Vec<f64> = g_mat.col(0).iter().copied().collect();
+            lu.solve_in_place(g_mat.as_mut());
+            let u: Vec<f64> = g_mat.col(0).iter().copied().collect();
+            let transposed = system.transposed();
+            let residual = worst(
+                transposed.relative_residual(&g, c),
+                transposed.relative_residual(&u, &g),
+            );
+            if residual.is_nan() || residual > ACCEPTED_RESIDUAL {
+                return Err(SolveFailure::Residual(residual));
+            }
+            Some(AdjointPair {
+                g,
+                u,
+                residual,
+                iterations: None,
+            })
+        }
+    };
+    Ok((
+        Solutions {
+            h,
+            t,
+            w,
+            residual,
+            iterations: None,
+        },
+        pair,
+    ))
+}
+
+/// The [`AdjointPair`] of `c` by preconditioned BiCGSTAB on `A^T`, renumbered by total count
+/// like the forward systems (the transpose keeps the block-tridiagonal count structure, so
+/// the same preconditioner construction applies to it).
+pub(crate) fn iterative_adjoint(
+    system: &EventSystem,
+    space: &StateSpace,
+    preconditioner: Preconditioner,
+    c: &[f64],
+    tolerance: f64,
+) -> Result<AdjointPair, SolveFailure> {
+    let transposed = system.transposed();
+    let levels = Levels::new(&transposed, space);
+    let ordered = &levels.system;
+    let c_ordered: Vec<f64> = levels.old.iter().map(|&o| c[o as usize]).collect();
+    let pair = match preconditioner {
+        Preconditioner::Jacobi => {
+            adjoint_pair(ordered, &Jacobi::new(ordered), &c_ordered, tolerance)
+        }
+        Preconditioner::TwoLevel => adjoint_pair(
+            ordered,
+            &TwoLevel::new(ordered, &levels, false),
+            &c_ordered,
+            tolerance,
+        ),
+        Preconditioner::TwoLevelIlu0 => adjoint_pair(
+            ordered,
+            &TwoLevel::new(ordered, &levels, true),
+            &c_ordered,
+            tolerance,
+        ),
+        Preconditioner::Ilu0 => adjoint_pair(
+            ordered,
+            &Ilu0::new(ordered, Some(&levels.start)),
+            &c_ordered,
+            tolerance,
+        ),
+    }?;
+    Ok(AdjointPair {
+        g: levels.to_mixed_radix(&pair.g),
+        u: levels.to_mixed_radix(&pair.u),
+        ..pair
+    })
+}
+
+/// `A^T g = c` then `A^T u = g`, on a system that already is `A^T`.
+fn adjoint_pair<P: Precond<f64> + Sync>(
+    transposed: &EventSystem,
+    precond: &P,
+    c: &[f64],
+    tolerance: f64,
+) -> Result<AdjointPair, SolveFailure> {
+    let operator = SystemOperator { system: transposed };
+    // Started from the Jacobi guess `D^-1 c`: from zero, a start weighting concentrated on one
+    // state makes the shadow residual a unit vector, and BiCGSTAB then stalls at relative
+    // residual 1 (seen on three demes of 45-47: 2,000 iterations without progress).
+    let jacobi_start: Vec<f64> = c
+        .iter()
+        .zip(&transposed.diag)
+        .map(|(&cc, &d)| cc / d)
+        .collect();
+    let (g, res_g, it_g) = bicgstab_solve(
+        &operator,
+        precond,
+        c,
+        Some(&jacobi_start),
+        tolerance,
+        Par::rayon(0),
+    )?;
+    let (u, res_u, it_u) = bicgstab_solve(&operator, precond, &g, None, tolerance, Par::rayon(0))?;
+    Ok(AdjointPair {
+        g,
+        u,
+        residual: worst(res_g, res_u),
+        iterations: Some(it_g + it_u),
     })
 }
 
@@ -260,6 +391,7 @@ fn bicgstab_solve<P: Precond<f64> + Sync>(
     let mut buffer = MemBuffer::new(bicgstab_scratch(identity, precond, operator, 1, par));
     let mut used = 0usize;
     let mut best: Option<(Vec<f64>, f64)> = None;
+    let mut jacobi_started = false;
     while used < MAX_ITERATIONS {
         let params = BicgParams {
             // Always "maybe nonzero" (with `x` holding the start): faer 0.24.4 leaves the
@@ -288,10 +420,20 @@ fn bicgstab_solve<P: Precond<f64> + Sync>(
         let current: Vec<f64> = x.col(0).iter().copied().collect();
         let residual = operator.system.relative_residual(&current, b);
         if !residual.is_finite() {
-            // Breakdown: restart from the best iterate so far (or from zero).
+            // Breakdown (for instance an exact solution at a half step, which faer turns into
+            // 0/0): restart from the best iterate so far, or else from the Jacobi guess
+            // `D^-1 b`, which starts a different Krylov sequence than the zero start did.
             match &best {
                 Some((good, _)) => x.col_mut(0).iter_mut().zip(good).for_each(|(a, &g)| *a = g),
-                None => x.fill(0.0),
+                None if !jacobi_started => {
+                    jacobi_started = true;
+                    let diag = &operator.system.diag;
+                    x.col_mut(0)
+                        .iter_mut()
+                        .zip(b.iter().zip(diag))
+                        .for_each(|(a, (&bb, &d))| *a = bb / d);
+                }
+                None => break,
             }
             continue;
         }
@@ -350,6 +492,43 @@ mod tests {
                 let got = iterative(&system, &space, p, 1e-12).unwrap();
                 assert!(got.residual <= 1e-8);
                 for (a, b) in [(&got.h, &exact.h), (&got.t, &exact.t), (&got.w, &exact.w)] {
+                    for (x, y) in a.iter().zip(b) {
+                        assert!(
+                            (x - y).abs() <= 1e-8 * y.abs().max(1e-3),
+                            "{p:?}: {x} vs {y}"
+                        );
+                    }
+                }
+            }
+        }
+    }
+
+    #[test]
+    fn adjoint_solves_agree_across_solvers() {
+        let pop = Population::new(vec![4, 5, 6]).unwrap();
+        let b = StochasticMatrix::from_weights(&[
+            vec![0.7, 0.2, 0.1],
+            vec![0.05, 0.8, 0.15],
+            vec![0.3, 0.1, 0.6],
+        ])
+        .unwrap();
+        for rule in [Rule::DeathBirth, Rule::BirthDeath] {
+            let model = Model::new(&pop, b.clone(), rule, Scope::Deme, 0.2).unwrap();
+            let space = StateSpace::new(model.sizes()).unwrap();
+            let system = EventSystem::assemble(&model, &space);
+            let mut c = vec![0.0; system.dim()];
+            c[space.single(1) - 1] = 1.0;
+            let (_, pair) = direct_with_adjoint(&system, Some(&c)).unwrap();
+            let exact = pair.unwrap();
+            for p in [
+                Preconditioner::Jacobi,
+                Preconditioner::TwoLevel,
+                Preconditioner::Ilu0,
+                Preconditioner::TwoLevelIlu0,
+            ] {
+                let got = iterative_adjoint(&system, &space, p, &c, 1e-12)
+                    .unwrap_or_else(|e| panic!("{rule:?} {p:?}: {e:?}"));
+                for (a, b) in [(&got.g, &exact.g), (&got.u, &exact.u)] {
                     for (x, y) in a.iter().zip(b) {
                         assert!(
                             (x - y).abs() <= 1e-8 * y.abs().max(1e-3),

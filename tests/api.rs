@@ -5,6 +5,8 @@
 
 mod api {
     pub mod helpers;
+    mod matrices;
+    mod queue;
 }
 
 use api::helpers::{ensemble_job, small_job, spawn_app, spawn_app_with, wait_finished, TempDir};
@@ -659,10 +661,12 @@ async fn an_ensemble_killed_mid_run_resumes_to_a_byte_identical_result() {
         "the kill came before the end of the run"
     );
 
-    // The same job again, computed from scratch by the same server.
+    // The same job again, computed from scratch by the same server (`no-cache`: not answered
+    // from the finished run by reuse).
     let clean: Value = client
         .post(format!("{}/v1/runs", child.base))
         .header("content-type", "application/json")
+        .header("cache-control", "no-cache")
         .body(job)
         .send()
         .await
@@ -673,6 +677,7 @@ async fn an_ensemble_killed_mid_run_resumes_to_a_byte_identical_result() {
     let clean_id = clean["id"].as_str().unwrap().to_owned();
     let clean = wait_finished(&client, &child.base, &clean_id, Duration::from_secs(180)).await;
     assert_eq!(clean["status"], "succeeded", "{clean:#}");
+    assert!(clean["reused_from"].is_null(), "{clean:#}");
     assert_eq!(
         resumed["results"].to_string(),
         clean["results"].to_string(),
@@ -732,6 +737,7 @@ async fn an_expired_lease_is_rescued_and_the_stale_worker_is_fenced_out() {
     let ok = Finish::Succeeded {
         provenance: "{}".to_owned(),
         results: "[]".to_owned(),
+        sensitivity: None,
         warnings: vec![],
     };
     assert!(store.finish(&run.id, "token-b", &ok).await.unwrap());
@@ -740,4 +746,41 @@ async fn an_expired_lease_is_rescued_and_the_stale_worker_is_fenced_out() {
     assert_eq!(stored.status.as_str(), "succeeded");
     assert_eq!(stored.error, None);
     store.close().await;
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn link_sensitivities_are_stored_served_and_reused_with_the_results() {
+    let app = spawn_app().await;
+    let mut job = small_job();
+    job["outputs"] = json!({"sensitivity": true});
+    let first: Value = app.post_job(&job).await.json().await.unwrap();
+    let id = first["id"].as_str().unwrap().to_owned();
+    let done = app.wait_finished(&id, FINISH).await;
+    assert_eq!(done["status"], "succeeded", "{done:#}");
+    let rows = done["sensitivity"].as_array().expect("sensitivity served");
+    assert!(!rows.is_empty());
+    let results = done["results"].as_array().unwrap();
+    for r in rows {
+        assert!(results
+            .iter()
+            .any(|x| x["s"] == r["s"] && x["start"] == r["start"]));
+        assert!(r["d_fixation_probability"].as_f64().unwrap().is_finite());
+    }
+    // the same spec again is answered by reuse, sensitivities included, byte for byte
+    let again: Value = app.post_job(&job).await.json().await.unwrap();
+    assert_eq!(again["reused_from"], json!(id), "{again:#}");
+    let again = app
+        .wait_finished(again["id"].as_str().unwrap(), FINISH)
+        .await;
+    assert_eq!(
+        again["sensitivity"].to_string(),
+        done["sensitivity"].to_string()
+    );
+    // without the output, no sensitivity member
+    let plain: Value = app.post_job(&small_job()).await.json().await.unwrap();
+    let plain = app
+        .wait_finished(plain["id"].as_str().unwrap(), FINISH)
+        .await;
+    assert!(plain.get("sensitivity").is_none(), "{plain:#}");
+    app.stop().await;
 }

@@ -414,3 +414,201 @@ fn a_missing_file_exits_1_with_a_message() {
     assert_eq!(out.status.code(), Some(1));
     assert!(String::from_utf8_lossy(&out.stderr).contains("cannot read"));
 }
+
+/// A fresh directory under the system temp dir, removed on drop.
+struct ScratchDir(PathBuf);
+
+impl ScratchDir {
+    fn new(tag: &str) -> Self {
+        let nanos = std::time::SystemTime::now()
+            .duration_since(std::time::UNIX_EPOCH)
+            .map_or(0, |d| d.as_nanos());
+        let dir =
+            std::env::temp_dir().join(format!("demefix-cli-{tag}-{}-{nanos}", std::process::id()));
+        std::fs::create_dir_all(&dir).expect("create a scratch dir");
+        Self(dir)
+    }
+}
+
+impl Drop for ScratchDir {
+    fn drop(&mut self) {
+        let _ = std::fs::remove_dir_all(&self.0);
+    }
+}
+
+/// A number of the demo table that must be a probability.
+fn probability_cell(cell: &str, line: &str) -> f64 {
+    let x: f64 = cell
+        .trim_matches(|c| c == '[' || c == ']' || c == ',')
+        .parse()
+        .unwrap_or_else(|_| panic!("`{cell}` is not a number in: {line}"));
+    assert!((0.0..=1.0).contains(&x), "{x} outside [0, 1] in: {line}");
+    x
+}
+
+#[test]
+fn the_demo_posts_the_scenario_over_http_and_prints_every_rule_s_and_start() {
+    let scratch = ScratchDir::new("demo");
+    let db = scratch.0.join("demo.db");
+    let out = demefix(
+        &[
+            "demo",
+            "--quiet",
+            "--replicates",
+            "300",
+            "--threads",
+            "2",
+            "--db",
+            db.to_str().unwrap(),
+        ],
+        None,
+    );
+    let stdout = String::from_utf8_lossy(&out.stdout).into_owned();
+    assert!(
+        out.status.success(),
+        "exit {:?}\nstdout: {stdout}\nstderr: {}",
+        out.status.code(),
+        String::from_utf8_lossy(&out.stderr)
+    );
+    assert!(out.stderr.is_empty(), "--quiet writes nothing on stderr");
+
+    let scenario: Value = serde_json::from_slice(
+        &std::fs::read(example("ferry-islands-ensemble.json")).expect("the scenario file"),
+    )
+    .unwrap();
+    let sweep: Vec<f64> = scenario["selection"]["s"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|s| s.as_f64().unwrap())
+        .collect();
+    let starts: Vec<&str> = scenario["start"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|s| s.as_str().unwrap())
+        .collect();
+    for rule in demefix::demo::RULES {
+        let rows: Vec<&str> = stdout
+            .lines()
+            .filter(|l| l.split_whitespace().next() == Some(rule))
+            .collect();
+        assert_eq!(rows.len(), sweep.len() * starts.len(), "{rule}:\n{stdout}");
+        for &s in &sweep {
+            for &start in &starts {
+                let line = rows
+                    .iter()
+                    .find(|l| {
+                        let t: Vec<&str> = l.split_whitespace().collect();
+                        t[1].parse::<f64>().ok() == Some(s) && t[2] == start
+                    })
+                    .unwrap_or_else(|| panic!("no row {rule} {s} {start}:\n{stdout}"));
+                let t: Vec<&str> = line.split_whitespace().collect();
+                let p = probability_cell(t[3], line);
+                let (lo, hi) = (probability_cell(t[4], line), probability_cell(t[5], line));
+                assert!(lo <= p && p <= hi, "{line}");
+                probability_cell(t[6], line);
+                let ratio: f64 = t[7].parse().unwrap();
+                assert!(ratio >= 0.0, "{line}");
+            }
+        }
+    }
+    assert!(stdout.contains("not forecasts"), "{stdout}");
+    assert!(stdout.contains("public-health authorities"), "{stdout}");
+
+    let ids: Vec<(String, String)> = stdout
+        .lines()
+        .filter_map(|l| {
+            let t: Vec<&str> = l.split_whitespace().collect();
+            (t.len() == 3 && t[0] == "run").then(|| (t[1].to_owned(), t[2].to_owned()))
+        })
+        .collect();
+    assert_eq!(ids.len(), demefix::demo::RULES.len(), "{stdout}");
+    let printed_db = stdout
+        .lines()
+        .find_map(|l| l.strip_prefix("database "))
+        .expect("the database path is printed");
+    assert_eq!(PathBuf::from(printed_db), db);
+    assert!(db.is_file(), "the database is kept");
+
+    let runtime = tokio::runtime::Runtime::new().unwrap();
+    runtime.block_on(async {
+        let store = demefix::db::Store::open(&db)
+            .await
+            .expect("the demo's database opens");
+        assert_eq!(store.count_runs().await.unwrap(), ids.len() as i64);
+        for (rule, id) in &ids {
+            let run = store.run(id).await.unwrap().expect("the run is stored");
+            assert_eq!(run.status.as_str(), "succeeded", "{rule} {id}");
+            let spec: Value = serde_json::from_str(&run.spec).unwrap();
+            assert_eq!(spec["dynamics"]["rule"].as_str(), Some(rule.as_str()));
+            assert_eq!(spec["method"]["replicates"], 300);
+            assert_eq!(run.done, run.total);
+        }
+        store.close().await;
+    });
+}
+
+#[test]
+fn the_demo_refuses_a_database_that_already_exists() {
+    let scratch = ScratchDir::new("demo-taken");
+    let db = scratch.0.join("taken.db");
+    std::fs::write(&db, b"not ours").unwrap();
+    let out = demefix(&["demo", "--quiet", "--db", db.to_str().unwrap()], None);
+    assert_eq!(out.status.code(), Some(1));
+    assert!(String::from_utf8_lossy(&out.stderr).contains("already exists"));
+    assert_eq!(std::fs::read(&db).unwrap(), b"not ours");
+}
+
+#[test]
+fn link_sensitivities_are_ranked_per_result_and_vanish_where_theory_says() {
+    for rule in ["death_birth", "birth_death"] {
+        let mut job = small_job();
+        job["dynamics"]["rule"] = json!(rule);
+        job["selection"]["s"] = json!([0.0, 0.1]);
+        job["outputs"] = json!({"sensitivity": true});
+        let doc = stdout_json(&run_stdin(&job, &[]));
+        let rows = doc["sensitivity"].as_array().expect("a sensitivity array");
+        // 2 values of s x 2 starts x 6 links (the off-diagonal flows)
+        assert_eq!(rows.len(), 24, "{rule}");
+        let ids = ["a", "b", "c"];
+        for group in rows.chunks(6) {
+            let (s, start) = (&group[0]["s"], &group[0]["start"]);
+            let d: Vec<f64> = group
+                .iter()
+                .map(|r| {
+                    assert_eq!((&r["s"], &r["start"]), (s, start));
+                    assert!(ids.contains(&r["from"].as_str().unwrap()));
+                    assert!(ids.contains(&r["to"].as_str().unwrap()));
+                    assert_ne!(r["from"], r["to"]);
+                    assert_eq!(r["method"], "exact_adjoint");
+                    r["d_fixation_probability"].as_f64().unwrap()
+                })
+                .collect();
+            assert!(
+                d.windows(2).all(|w| w[0] <= w[1]),
+                "most lowering first: {d:?}"
+            );
+            if s == &json!(0.0) && start == "uniform" {
+                // neutral fixation from a uniformly chosen individual is 1/N for every
+                // matrix (references.md §5.1): no link changes it
+                assert!(d.iter().all(|x| x.abs() < 1e-12), "{rule}: {d:?}");
+            } else if start == "a" {
+                assert!(d.iter().any(|x| x.abs() > 1e-4), "{rule} {s}: {d:?}");
+            }
+        }
+    }
+    let mut wf = small_job();
+    wf["dynamics"]["rule"] = json!("wright_fisher");
+    wf["outputs"] = json!({"sensitivity": true});
+    let doc = stdout_json(&run_stdin(&wf, &[]));
+    assert!(doc.get("sensitivity").is_none());
+    assert!(
+        doc["warnings"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .any(|w| w.as_str().unwrap().contains("outputs.sensitivity")),
+        "{doc:#}"
+    );
+}

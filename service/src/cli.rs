@@ -1,4 +1,5 @@
-//! The local command line: `demefix run`, `demefix validate` and `demefix serve`.
+//! The local command line: `demefix run`, `demefix validate`, `demefix serve` and
+//! `demefix demo` (the service end to end in one process, see [`crate::demo`]).
 //!
 //! This module owns everything at the process edge: reading the job (a file or `-` for
 //! stdin), the exit codes (0 success, 2 invalid job with the RFC 9457 problem document on
@@ -38,6 +39,31 @@ enum Command {
     /// Run the HTTP analysis service (configured by DEMEFIX_* environment variables; see
     /// DEVELOPERS.md).
     Serve,
+    /// Start the service in this process with a fresh database, post the demo scenario
+    /// (examples/ferry-islands-ensemble.json) for two update rules, and print the results.
+    Demo(DemoArgs),
+}
+
+#[derive(Debug, Args)]
+struct DemoArgs {
+    /// SQLite file to create for the demo (must not exist yet; default: demefix.db in a new
+    /// directory under the system temp dir). It is kept and its path printed.
+    #[arg(long, value_name = "PATH")]
+    db: Option<std::path::PathBuf>,
+    /// Worker threads of the service (default: the number of CPUs). Results do not depend on
+    /// it.
+    #[arg(long, value_name = "N", value_parser = clap::value_parser!(u64).range(1..=1024))]
+    threads: Option<u64>,
+    /// Replicates per table row instead of the scenario's 4,000 (fewer is faster, with wider
+    /// intervals).
+    #[arg(long, value_name = "N", value_parser = clap::value_parser!(u64).range(1..=10_000_000))]
+    replicates: Option<u64>,
+    /// Delete the database once the table is printed.
+    #[arg(long)]
+    discard: bool,
+    /// No progress or status lines on stderr.
+    #[arg(long)]
+    quiet: bool,
 }
 
 #[derive(Debug, Args)]
@@ -100,6 +126,7 @@ pub fn main() -> ExitCode {
         Command::Run(args) => run(&args),
         Command::Validate(args) => validate(&args),
         Command::Serve => serve(),
+        Command::Demo(args) => demo(&args),
     };
     match outcome {
         Ok(()) => ExitCode::SUCCESS,
@@ -118,6 +145,18 @@ fn serve() -> Result<(), Failure> {
     runtime
         .block_on(crate::server::serve(config))
         .map_err(|e| Failure::Other(e.to_string()))
+}
+
+fn demo(args: &DemoArgs) -> Result<(), Failure> {
+    let options = crate::demo::DemoOptions {
+        db: args.db.clone(),
+        workers: args.threads.map(|n| n as usize),
+        replicates: args.replicates,
+        discard: args.discard,
+        quiet: args.quiet,
+    };
+    let mut stdout = std::io::stdout().lock();
+    crate::demo::run(&options, &mut stdout).map_err(|e| Failure::Other(e.to_string()))
 }
 
 fn read_job(path: &str) -> Result<Vec<u8>, Failure> {
@@ -238,6 +277,7 @@ fn run(args: &RunArgs) -> Result<(), Failure> {
         spec: job.spec(),
         provenance: &provenance,
         results: &outcome.results,
+        sensitivity: &outcome.sensitivity,
         warnings: &warnings,
         disclaimer: DISCLAIMER,
     })

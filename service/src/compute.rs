@@ -14,12 +14,13 @@
 //!
 //! Every result carries the well-mixed reference for the same total size.
 
-use crate::document::{RunResult, TimeUnits};
+use crate::document::{LinkSensitivity, RunResult, TimeUnits, SENSITIVITY_MEANING};
 use crate::spec::{MethodKind, ResolvedMethod, ValidatedJob};
 use demefix_science::ensemble::{self, Accumulator, EnsembleError, ProgressObserver, StopReason};
 use demefix_science::exact::{self, ExactError};
 use demefix_science::start::combine;
-use demefix_science::{well_mixed, Model, ModelError};
+use demefix_science::Start;
+use demefix_science::{well_mixed, Model, ModelError, Rule};
 use std::sync::atomic::{AtomicBool, Ordering};
 
 /// Results of a job and what the computation had to say about it.
@@ -27,6 +28,8 @@ use std::sync::atomic::{AtomicBool, Ordering};
 pub struct Outcome {
     /// One result per `(s, start)`.
     pub results: Vec<RunResult>,
+    /// Link sensitivities, when the job asks for them and the method gives them.
+    pub sensitivity: Vec<LinkSensitivity>,
     /// Warnings raised while computing (validation warnings are the job's own).
     pub warnings: Vec<String>,
     /// The method used, for provenance: `exact`, `ensemble` or `approximation:<name>`.
@@ -121,8 +124,9 @@ pub fn run_resumable(
     let resume = resume.unwrap_or_default();
     match job.method() {
         ResolvedMethod::Exact { .. } => match run_exact(job, pool, cancel) {
-            Ok(results) => Ok(Outcome {
+            Ok((results, sensitivity)) => Ok(Outcome {
                 results,
+                sensitivity,
                 warnings: Vec::new(),
                 method: "exact".to_owned(),
             }),
@@ -157,6 +161,7 @@ pub fn run_resumable(
                 .map_or_else(|| "approximation".to_owned(), |r| r.method.clone());
             Ok(Outcome {
                 results,
+                sensitivity: Vec::new(),
                 warnings: Vec::new(),
                 method,
             })
@@ -168,10 +173,11 @@ fn run_exact(
     job: &ValidatedJob,
     pool: &rayon::ThreadPool,
     cancel: &AtomicBool,
-) -> Result<Vec<RunResult>, ComputeError> {
+) -> Result<(Vec<RunResult>, Vec<LinkSensitivity>), ComputeError> {
     let rule = job.spec().dynamics.rule;
     let total = job.population().total();
     let mut results = Vec::new();
+    let mut sensitivity = Vec::new();
     for &s in job.selection() {
         if cancel.load(Ordering::Relaxed) {
             return Err(ComputeError::Cancelled);
@@ -189,9 +195,59 @@ fn run_exact(
                 &wm,
                 units(job),
             ));
+            if job.spec().outputs.sensitivity && rule != Rule::WrightFisher {
+                if cancel.load(Ordering::Relaxed) {
+                    return Err(ComputeError::Cancelled);
+                }
+                let weights = start.deme_weights(&model);
+                let found =
+                    pool.install(|| exact::sensitivity(&model, job.exact_config(), &weights))?;
+                sensitivity.extend(link_rows(job, s, start, &model, &found));
+            }
         }
     }
-    Ok(results)
+    Ok((results, sensitivity))
+}
+
+/// The link rows of one exact sensitivity, in api.md's sign (moving probability from the link
+/// to retention), the most lowering first (ties in kernel order).
+fn link_rows(
+    job: &ValidatedJob,
+    s: f64,
+    start: Start,
+    model: &Model,
+    found: &exact::ExactSensitivity,
+) -> Vec<LinkSensitivity> {
+    let rule = model.rule();
+    let times = job.spec().outputs.times;
+    let fixation = found.d_fixation_probability.link_effects(rule);
+    let fixation_time = found.d_mean_fixation_generations.link_effects(rule);
+    let mut rows: Vec<((usize, usize), LinkSensitivity)> = fixation
+        .iter()
+        .zip(&fixation_time)
+        .map(|(p, t)| {
+            let d_time = -t.derivative;
+            (
+                (p.row, p.col),
+                LinkSensitivity {
+                    s,
+                    start: job.start_label(start).to_owned(),
+                    from: job.deme_id(p.from).to_owned(),
+                    to: job.deme_id(p.to).to_owned(),
+                    d_fixation_probability: -p.derivative,
+                    d_mean_fixation_generations: (times && d_time.is_finite()).then_some(d_time),
+                    method: "exact_adjoint",
+                    meaning: SENSITIVITY_MEANING,
+                },
+            )
+        })
+        .collect();
+    rows.sort_by(|(a_pos, a), (b_pos, b)| {
+        a.d_fixation_probability
+            .total_cmp(&b.d_fixation_probability)
+            .then(a_pos.cmp(b_pos))
+    });
+    rows.into_iter().map(|(_, row)| row).collect()
 }
 
 fn run_ensembles(
@@ -266,6 +322,7 @@ fn run_ensembles(
     }
     Ok(Outcome {
         results,
+        sensitivity: Vec::new(),
         warnings,
         method: "ensemble".to_owned(),
     })

@@ -313,6 +313,34 @@ impl RunResult {
     }
 }
 
+/// What a link sensitivity means, written beside each entry.
+pub const SENSITIVITY_MEANING: &str = "change per unit of probability moved from this link to \
+local retention in the rule's matrix (B for death_birth, F for birth_death), rows kept \
+stochastic; negative: reducing the link lowers the quantity";
+
+/// The effect of reducing one movement link on one result (`sensitivity` of api.md).
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct LinkSensitivity {
+    /// Selection coefficient of the result.
+    pub s: f64,
+    /// Start of the result (deme id, `uniform` or `at_birth`).
+    pub start: String,
+    /// Deme the lineage moves from along the link.
+    pub from: String,
+    /// Deme the lineage moves to.
+    pub to: String,
+    /// Derivative of the fixation probability.
+    pub d_fixation_probability: f64,
+    /// Derivative of the mean conditional fixation time, generations (when times are
+    /// reported and fixation is possible).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub d_mean_fixation_generations: Option<f64>,
+    /// How it was computed: `exact_adjoint`.
+    pub method: &'static str,
+    /// [`SENSITIVITY_MEANING`].
+    pub meaning: &'static str,
+}
+
 /// An arrival fraction as a map key: shortest round-trip decimal (`0.05`, `0.5`, `1`).
 pub fn fraction_key(f: f64) -> String {
     format!("{f}")
@@ -327,6 +355,10 @@ pub struct RunDocument<'a> {
     pub provenance: &'a Provenance,
     /// One result per `(s, start)`, sweep order outermost.
     pub results: &'a [RunResult],
+    /// Link sensitivities (when `outputs.sensitivity`), per `(s, start)` in result order,
+    /// most lowering first.
+    #[serde(skip_serializing_if = "<[LinkSensitivity]>::is_empty")]
+    pub sensitivity: &'a [LinkSensitivity],
     /// Everything the caller should know about how the job was read and run.
     pub warnings: &'a [String],
     /// [`DISCLAIMER`].

@@ -19,6 +19,7 @@ pub mod cli;
 pub mod compute;
 pub mod config;
 pub mod db;
+pub mod demo;
 pub mod document;
 pub mod domain;
 pub mod http;

@@ -152,6 +152,75 @@ impl Provenance {
     }
 }
 
+/// A JSON object whose members keep their order and their text (numbers are not re-read).
+struct OrderedObject(Vec<(String, Box<serde_json::value::RawValue>)>);
+
+impl<'de> serde::Deserialize<'de> for OrderedObject {
+    fn deserialize<D: serde::Deserializer<'de>>(d: D) -> Result<Self, D::Error> {
+        struct Members;
+        impl<'de> serde::de::Visitor<'de> for Members {
+            type Value = OrderedObject;
+            fn expecting(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+                f.write_str("a JSON object")
+            }
+            fn visit_map<A: serde::de::MapAccess<'de>>(
+                self,
+                mut map: A,
+            ) -> Result<OrderedObject, A::Error> {
+                let mut members = Vec::new();
+                while let Some(member) = map.next_entry()? {
+                    members.push(member);
+                }
+                Ok(OrderedObject(members))
+            }
+        }
+        d.deserialize_map(Members)
+    }
+}
+
+impl Serialize for OrderedObject {
+    fn serialize<S: serde::Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
+        use serde::ser::SerializeMap;
+        let mut map = s.serialize_map(Some(self.0.len()))?;
+        for (k, v) in &self.0 {
+            map.serialize_entry(k, v)?;
+        }
+        map.end()
+    }
+}
+
+/// The provenance of a run that reuses the results of run `reused_from`: the earlier
+/// provenance (`original`, JSON object text) member for member, except that
+/// `request_sha256` is this request's and a `reused_from` member follows it. Everything
+/// else (hashes, seed, method and its version, the host, threads and `computed_at` of the
+/// computation) describes the computation that produced the results, and is kept.
+pub fn reused_provenance(
+    original: &str,
+    request_sha256: &str,
+    reused_from: &str,
+) -> Result<String, serde_json::Error> {
+    let OrderedObject(members) = serde_json::from_str(original)?;
+    let text = |s: &str| serde_json::value::to_raw_value(s);
+    let mut out = Vec::with_capacity(members.len() + 1);
+    let mut placed = false;
+    for (k, v) in members {
+        match k.as_str() {
+            "reused_from" => {}
+            "request_sha256" => {
+                out.push((k, text(request_sha256)?));
+                out.push(("reused_from".to_owned(), text(reused_from)?));
+                placed = true;
+            }
+            _ => out.push((k, v)),
+        }
+    }
+    if !placed {
+        out.insert(0, ("request_sha256".to_owned(), text(request_sha256)?));
+        out.insert(1, ("reused_from".to_owned(), text(reused_from)?));
+    }
+    serde_json::to_string(&OrderedObject(out))
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -176,6 +245,22 @@ mod tests {
             matrix_sha256(1, [1.0]),
             "8b03313b04b1a724109d8418e2a6637a570c206064a5536ec040e8b5b5f2a941"
         );
+    }
+
+    #[test]
+    fn a_reused_provenance_keeps_the_computation_and_names_the_request_and_the_source() {
+        let original =
+            r#"{"request_sha256":"aa","spec_sha256":"bb","seed":7,"x":1.50e-3,"computed_at":"t"}"#;
+        let got = reused_provenance(original, "cc", "run-1").unwrap();
+        assert_eq!(
+            got,
+            r#"{"request_sha256":"cc","reused_from":"run-1","spec_sha256":"bb","seed":7,"x":1.50e-3,"computed_at":"t"}"#
+        );
+        // Reusing a reused run's provenance names only the newest source.
+        let again = reused_provenance(&got, "dd", "run-2").unwrap();
+        assert!(again.starts_with(r#"{"request_sha256":"dd","reused_from":"run-2","spec"#));
+        assert_eq!(again.matches("reused_from").count(), 1);
+        assert!(reused_provenance("[1]", "cc", "run-1").is_err());
     }
 
     #[test]

@@ -4,9 +4,10 @@
 //! (`journal_mode=WAL` set when the store opens, `synchronous=FULL`, a `busy_timeout`,
 //! `foreign_keys=ON`), the split into one writer connection and a pool of read-only readers,
 //! the migrations (`migrations/` at the package root, applied on open), and every statement:
-//! submission with its idempotency check, the queue (claim, heartbeat, checkpoint,
+//! submission with its idempotency check and result reuse, the content-addressed matrices
+//! (stored once per canonical hash, never changed), the queue (claim, heartbeat, checkpoint,
 //! completion fenced by the lease token, requeue on shutdown, rescue of expired leases by
-//! the claim itself), cancellation, and the read side (one run, a page of runs).
+//! the claim itself), cancellation, and the read side (one run, a page of runs, a matrix).
 //!
 //! Every read-then-write transaction starts with `BEGIN IMMEDIATE`, so it takes the write
 //! lock before reading and never fails half-way with `SQLITE_BUSY_SNAPSHOT`. Single-statement
@@ -15,11 +16,13 @@
 //! needs no database.
 
 mod rows;
+mod stats;
 
-pub use rows::{Claim, RunRecord};
+pub use rows::{Claim, MatrixRecord, RunRecord};
+pub use stats::RunCounts;
 
-use crate::domain::{Finish, ListQuery, NewRun, RunStatus};
-use rows::{ClaimRow, RunRow, RUN_COLUMNS};
+use crate::domain::{self, Finish, ListQuery, NewMatrix, NewRun, RunStatus};
+use rows::{ClaimRow, MatrixRow, ReusableRow, RunRow, MATRIX_COLUMNS, RUN_COLUMNS};
 use sqlx::sqlite::{
     SqliteConnectOptions, SqliteJournalMode, SqlitePool, SqlitePoolOptions, SqliteSynchronous,
 };
@@ -44,7 +47,7 @@ pub enum DbError {
     #[error("migration: {0}")]
     Migrate(#[from] sqlx::migrate::MigrateError),
     /// A stored value is not what the schema promises.
-    #[error("stored run {id} is corrupt: {what}")]
+    #[error("stored record {id} is corrupt: {what}")]
     Corrupt {
         /// Run id.
         id: String,
@@ -62,6 +65,18 @@ pub enum Submitted {
     Existing(RunRecord),
     /// The idempotency key was used before with another body (the id of that run).
     KeyReused(String),
+    /// A new run was stored already succeeded, with the results of an earlier succeeded
+    /// run of the same spec and method version (its `reused_from`).
+    Reused(RunRecord),
+}
+
+/// What storing a matrix did.
+#[derive(Debug)]
+pub enum MatrixStored {
+    /// The matrix was new.
+    Created(MatrixRecord),
+    /// A matrix with the same canonical hash was stored before: that one.
+    Existing(MatrixRecord),
 }
 
 /// What a cancellation request did.
@@ -92,6 +107,25 @@ fn now_ms() -> i64 {
 
 fn millis(d: Duration) -> i64 {
     i64::try_from(d.as_millis()).unwrap_or(i64::MAX)
+}
+
+/// Inserts `matrix` unless its hash is stored already; returns whether it was new.
+async fn insert_matrix(
+    tx: &mut sqlx::SqliteConnection,
+    matrix: &NewMatrix,
+    now: &str,
+) -> Result<bool, DbError> {
+    let result = sqlx::query(
+        "INSERT INTO matrices (matrix_sha256, demes, entries, created_at) VALUES (?, ?, ?, ?)
+         ON CONFLICT (matrix_sha256) DO NOTHING",
+    )
+    .bind(&matrix.sha256)
+    .bind(matrix.demes as i64)
+    .bind(&matrix.entries_json)
+    .bind(now)
+    .execute(&mut *tx)
+    .await?;
+    Ok(result.rows_affected() == 1)
 }
 
 impl Store {
@@ -128,7 +162,10 @@ impl Store {
         self.reader.close().await;
     }
 
-    /// Stores `new` (and its matrix, once per hash), honouring its idempotency key.
+    /// Stores `new` (and its matrix, once per hash), honouring its idempotency key first; then,
+    /// when `new.allow_reuse`, the earliest succeeded run with the same spec hash and method
+    /// version answers it: the new run is stored already succeeded with that run's results
+    /// ([`domain::reuse`]). All in one `BEGIN IMMEDIATE` transaction.
     pub async fn submit(&self, new: &NewRun) -> Result<Submitted, DbError> {
         let mut tx = self.writer.begin_with("BEGIN IMMEDIATE").await?;
         if let Some(key) = &new.idempotency_key {
@@ -152,33 +189,58 @@ impl Store {
             }
         }
         let now = now_text();
-        sqlx::query(
-            "INSERT INTO matrices (matrix_sha256, demes, entries, created_at) VALUES (?, ?, ?, ?)
-             ON CONFLICT (matrix_sha256) DO NOTHING",
-        )
-        .bind(&new.matrix_sha256)
-        .bind(new.demes as i64)
-        .bind(&new.matrix_json)
-        .bind(&now)
-        .execute(&mut *tx)
-        .await?;
+        insert_matrix(&mut tx, &new.matrix, &now).await?;
+        let reuse = if new.allow_reuse {
+            let earlier: Option<ReusableRow> = sqlx::query_as(
+                "SELECT id, provenance, results, warnings, sensitivity FROM runs
+                 WHERE spec_sha256 = ? AND method_version = ? AND status = 'succeeded'
+                 ORDER BY id LIMIT 1",
+            )
+            .bind(&new.spec_sha256)
+            .bind(&new.method_version)
+            .fetch_optional(&mut *tx)
+            .await?;
+            match earlier {
+                Some(row) => row
+                    .into_reusable()?
+                    .and_then(|earlier| domain::reuse(new, &earlier)),
+                None => None,
+            }
+        } else {
+            None
+        };
+        let warnings = reuse.as_ref().map_or(&new.warnings, |r| &r.warnings);
         sqlx::query(
             "INSERT INTO runs (id, status, series, spec, spec_sha256, request, request_sha256,
                                matrix_sha256, warnings, progress_total, submitted_at,
-                               idempotency_key)
-             VALUES (?, 'queued', ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                               idempotency_key, provenance, results, progress_done,
+                               started_at, finished_at, reused_from, sensitivity)
+             VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14,
+                     CASE WHEN ?15 IS NULL THEN 0 ELSE ?10 END,
+                     CASE WHEN ?15 IS NULL THEN NULL ELSE ?11 END,
+                     CASE WHEN ?15 IS NULL THEN NULL ELSE ?11 END,
+                     ?15, ?16)",
         )
         .bind(&new.id)
+        .bind(if reuse.is_some() {
+            RunStatus::Succeeded.as_str()
+        } else {
+            RunStatus::Queued.as_str()
+        })
         .bind(&new.series)
         .bind(&new.spec_json)
         .bind(&new.spec_sha256)
         .bind(&new.request)
         .bind(&new.request_sha256)
-        .bind(&new.matrix_sha256)
-        .bind(serde_json::to_string(&new.warnings).unwrap_or_else(|_| "[]".to_owned()))
+        .bind(&new.matrix.sha256)
+        .bind(serde_json::to_string(warnings).unwrap_or_else(|_| "[]".to_owned()))
         .bind(new.total as i64)
         .bind(&now)
         .bind(&new.idempotency_key)
+        .bind(reuse.as_ref().map(|r| &r.provenance))
+        .bind(reuse.as_ref().map(|r| &r.results))
+        .bind(reuse.as_ref().map(|r| &r.reused_from))
+        .bind(reuse.as_ref().and_then(|r| r.sensitivity.as_ref()))
         .execute(&mut *tx)
         .await?;
         tx.commit().await?;
@@ -186,7 +248,47 @@ impl Store {
             id: new.id.clone(),
             what: "not found right after it was stored".to_owned(),
         })?;
-        Ok(Submitted::Created(run))
+        Ok(if reuse.is_some() {
+            Submitted::Reused(run)
+        } else {
+            Submitted::Created(run)
+        })
+    }
+
+    /// Stores `matrix` under its canonical hash, once: a matrix with the same hash is left
+    /// as it is (matrices are immutable) and returned.
+    pub async fn store_matrix(&self, matrix: &NewMatrix) -> Result<MatrixStored, DbError> {
+        let mut tx = self.writer.begin_with("BEGIN IMMEDIATE").await?;
+        let created = insert_matrix(&mut tx, matrix, &now_text()).await?;
+        let sql = format!("SELECT {MATRIX_COLUMNS} FROM matrices WHERE matrix_sha256 = ?");
+        let row: MatrixRow = sqlx::query_as(&sql)
+            .bind(&matrix.sha256)
+            .fetch_one(&mut *tx)
+            .await?;
+        tx.commit().await?;
+        let record = row.into_record()?;
+        Ok(if created {
+            MatrixStored::Created(record)
+        } else {
+            MatrixStored::Existing(record)
+        })
+    }
+
+    /// The matrix whose canonical hash is `sha256` (lowercase hex), if stored.
+    pub async fn matrix(&self, sha256: &str) -> Result<Option<MatrixRecord>, DbError> {
+        let sql = format!("SELECT {MATRIX_COLUMNS} FROM matrices WHERE matrix_sha256 = ?");
+        let row: Option<MatrixRow> = sqlx::query_as(&sql)
+            .bind(sha256)
+            .fetch_optional(&self.reader)
+            .await?;
+        row.map(MatrixRow::into_record).transpose()
+    }
+
+    /// Number of matrices stored.
+    pub async fn count_matrices(&self) -> Result<i64, DbError> {
+        Ok(sqlx::query_scalar("SELECT count(*) FROM matrices")
+            .fetch_one(&self.reader)
+            .await?)
     }
 
     /// The run `id`, if it exists.
@@ -335,13 +437,15 @@ impl Store {
             Finish::Succeeded {
                 provenance,
                 results,
+                sensitivity,
                 warnings,
             } => {
                 sqlx::query(
                     "UPDATE runs
                      SET status = 'succeeded', provenance = ?1, results = ?2, warnings = ?3,
                          progress_done = progress_total, finished_at = ?4,
-                         lease_token = NULL, lease_expires_ms = NULL, checkpoint = NULL
+                         lease_token = NULL, lease_expires_ms = NULL, checkpoint = NULL,
+                         sensitivity = ?7
                      WHERE id = ?5 AND lease_token = ?6 AND status = 'running'",
                 )
                 .bind(provenance)
@@ -350,6 +454,7 @@ impl Store {
                 .bind(&now)
                 .bind(id)
                 .bind(token)
+                .bind(sensitivity)
                 .execute(&self.writer)
                 .await?
             }

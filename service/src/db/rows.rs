@@ -1,12 +1,14 @@
 //! Rows as SQLite returns them, and their conversion into the records the rest of the
-//! service uses. JSON columns are kept as text: they are written once and served as stored.
+//! service uses (runs, claims, stored matrices). JSON columns are kept as text: they are
+//! written once and served as stored.
 
 use super::DbError;
-use crate::domain::RunStatus;
+use crate::domain::{ReusableRun, RunStatus};
 
 /// Columns of [`RunRow`], in `SELECT` form.
 pub(super) const RUN_COLUMNS: &str = "id, status, series, spec, provenance, results, warnings, \
-    error, progress_done, progress_total, submitted_at, started_at, finished_at";
+    error, progress_done, progress_total, submitted_at, started_at, finished_at, reused_from, \
+    sensitivity";
 
 #[derive(Debug, sqlx::FromRow)]
 pub(super) struct RunRow {
@@ -23,6 +25,8 @@ pub(super) struct RunRow {
     submitted_at: String,
     started_at: Option<String>,
     finished_at: Option<String>,
+    reused_from: Option<String>,
+    sensitivity: Option<String>,
 }
 
 /// A stored run. JSON members are the stored text.
@@ -54,6 +58,10 @@ pub struct RunRecord {
     pub started_at: Option<String>,
     /// RFC 3339 UTC.
     pub finished_at: Option<String>,
+    /// The run whose results this run reuses (nothing was computed for it).
+    pub reused_from: Option<String>,
+    /// Link sensitivities (JSON array text), when computed.
+    pub sensitivity: Option<String>,
 }
 
 fn corrupt(id: &str, what: impl Into<String>) -> DbError {
@@ -84,6 +92,8 @@ impl RunRow {
             submitted_at: self.submitted_at,
             started_at: self.started_at,
             finished_at: self.finished_at,
+            reused_from: self.reused_from,
+            sensitivity: self.sensitivity,
             id: self.id,
         })
     }
@@ -130,5 +140,68 @@ impl ClaimRow {
             attempt: u64::try_from(self.attempts).unwrap_or(0),
             cancel_requested: self.cancel_requested != 0,
         }
+    }
+}
+
+/// Columns of [`MatrixRow`], in `SELECT` form.
+pub(super) const MATRIX_COLUMNS: &str = "matrix_sha256, demes, entries, created_at";
+
+#[derive(Debug, sqlx::FromRow)]
+pub(super) struct MatrixRow {
+    matrix_sha256: String,
+    demes: i64,
+    entries: String,
+    created_at: String,
+}
+
+/// A stored matrix.
+#[derive(Debug, Clone, PartialEq)]
+pub struct MatrixRecord {
+    /// Canonical matrix hash (lowercase hex).
+    pub sha256: String,
+    /// Number of rows `m`.
+    pub demes: u64,
+    /// The `m x m` entries as JSON rows (text as stored).
+    pub entries: String,
+    /// RFC 3339 UTC, when it was first stored.
+    pub created_at: String,
+}
+
+impl MatrixRow {
+    pub(super) fn into_record(self) -> Result<MatrixRecord, DbError> {
+        let demes = u64::try_from(self.demes)
+            .map_err(|_| corrupt(&self.matrix_sha256, format!("demes {}", self.demes)))?;
+        Ok(MatrixRecord {
+            sha256: self.matrix_sha256,
+            demes,
+            entries: self.entries,
+            created_at: self.created_at,
+        })
+    }
+}
+
+#[derive(Debug, sqlx::FromRow)]
+pub(super) struct ReusableRow {
+    id: String,
+    provenance: Option<String>,
+    results: Option<String>,
+    warnings: String,
+    sensitivity: Option<String>,
+}
+
+impl ReusableRow {
+    /// The run, or `None` when it lacks provenance or results (never for a succeeded run).
+    pub(super) fn into_reusable(self) -> Result<Option<ReusableRun>, DbError> {
+        let warnings = warnings(&self.id, &self.warnings)?;
+        Ok(match (self.provenance, self.results) {
+            (Some(provenance), Some(results)) => Some(ReusableRun {
+                id: self.id,
+                provenance,
+                results,
+                sensitivity: self.sensitivity,
+                warnings,
+            }),
+            _ => None,
+        })
     }
 }

@@ -16,7 +16,7 @@ pub const PROBLEM_JSON: &str = "application/problem+json";
 /// A failure, as the client will see it.
 #[derive(Debug)]
 pub enum ApiError {
-    /// The job failed validation: 422 with every problem.
+    /// The job (or a matrix document) failed validation: 422 with every problem.
     InvalidJob(InvalidJob),
     /// The `Idempotency-Key` was used before with a different body: 422.
     IdempotencyKeyReused {
@@ -29,6 +29,8 @@ pub enum ApiError {
     NotFound(String),
     /// The request conflicts with the resource's state: 409.
     Conflict(String),
+    /// The body's media type is not one the route reads: 415.
+    UnsupportedMediaType(String),
     /// The body exceeds the limit: 413.
     PayloadTooLarge {
         /// The limit, bytes.
@@ -60,6 +62,7 @@ impl fmt::Display for ApiError {
             ApiError::BadRequest(m)
             | ApiError::NotFound(m)
             | ApiError::Conflict(m)
+            | ApiError::UnsupportedMediaType(m)
             | ApiError::Unavailable(m) => f.write_str(m),
             ApiError::PayloadTooLarge { limit } => {
                 write!(f, "the request body exceeds the limit of {limit} bytes")
@@ -102,6 +105,7 @@ impl ResponseError for ApiError {
             ApiError::NotFound(_) => StatusCode::NOT_FOUND,
             ApiError::Conflict(_) => StatusCode::CONFLICT,
             ApiError::PayloadTooLarge { .. } => StatusCode::PAYLOAD_TOO_LARGE,
+            ApiError::UnsupportedMediaType(_) => StatusCode::UNSUPPORTED_MEDIA_TYPE,
             ApiError::Unavailable(_) => StatusCode::SERVICE_UNAVAILABLE,
             ApiError::Internal(_) => StatusCode::INTERNAL_SERVER_ERROR,
         }
@@ -124,6 +128,9 @@ impl ResponseError for ApiError {
             ApiError::Conflict(_) => ("/problems/conflict", "Conflict"),
             ApiError::PayloadTooLarge { .. } => {
                 ("/problems/payload-too-large", "Payload too large")
+            }
+            ApiError::UnsupportedMediaType(_) => {
+                ("/problems/unsupported-media-type", "Unsupported media type")
             }
             ApiError::Unavailable(_) => ("/problems/unavailable", "Service unavailable"),
             ApiError::Internal(_) => ("/problems/internal", "Internal error"),

@@ -5,6 +5,7 @@
 //! [`crate::domain`], and shape the answer. Errors become problem documents in [`error`].
 
 pub mod error;
+mod matrices;
 mod runs;
 
 use crate::config::Config;
@@ -28,6 +29,8 @@ pub const ROUTES: &[(&str, &str)] = &[
     ("GET", "/v1/runs"),
     ("GET", "/v1/runs/{id}"),
     ("POST", "/v1/runs/{id}/cancel"),
+    ("POST", "/v1/matrices"),
+    ("GET", "/v1/matrices/{sha256}"),
     ("GET", "/healthz"),
     ("GET", "/readyz"),
     ("GET", "/metrics"),
@@ -58,6 +61,8 @@ pub fn routes(cfg: &mut web::ServiceConfig) {
     )
     .service(web::resource("/v1/runs/{id}").route(web::get().to(runs::get)))
     .service(web::resource("/v1/runs/{id}/cancel").route(web::post().to(runs::cancel)))
+    .service(web::resource("/v1/matrices").route(web::post().to(matrices::create)))
+    .service(web::resource("/v1/matrices/{sha256}").route(web::get().to(matrices::get)))
     .service(web::resource("/healthz").route(web::get().to(healthz)))
     .service(web::resource("/readyz").route(web::get().to(readyz)))
     .service(web::resource("/metrics").route(web::get().to(metrics_text)))
@@ -95,7 +100,21 @@ async fn readyz(state: web::Data<AppState>) -> Result<HttpResponse, ApiError> {
     })))
 }
 
+/// `GET /metrics`: refreshes the gauges read from the database (runs by status, queue
+/// depth), then renders every metric of the process in the Prometheus text format. If the
+/// database cannot be read the other metrics are still served and the gauges keep their
+/// last values.
 async fn metrics_text(state: web::Data<AppState>) -> HttpResponse {
+    match state.store.run_counts().await {
+        Ok(counts) => {
+            for status in crate::domain::RunStatus::ALL {
+                metrics::gauge!("demefix_runs", "status" => status.as_str())
+                    .set(counts.of(status) as f64);
+            }
+            metrics::gauge!("demefix_queue_depth").set(counts.queued as f64);
+        }
+        Err(e) => tracing::warn!(error = %e, "metrics: cannot count the runs"),
+    }
     HttpResponse::Ok()
         .content_type("text/plain; version=0.0.4")
         .body(state.metrics.render())

@@ -1,4 +1,5 @@
-//! Handlers of `/v1/runs`: submit, fetch one, list, cancel.
+//! Handlers of `/v1/runs`: submit (including the answer of a reused run), fetch one, list,
+//! cancel; and the body reading shared with `/v1/matrices`.
 
 use super::error::ApiError;
 use super::AppState;
@@ -16,7 +17,7 @@ const RETRY_AFTER_SECS: &str = "1";
 const DRAIN_FACTOR: usize = 4;
 
 /// Reads the body, answering 413 above `limit` bytes.
-async fn read_body(
+pub(super) async fn read_body(
     req: &HttpRequest,
     mut payload: web::Payload,
     limit: usize,
@@ -75,7 +76,18 @@ fn location(run: &RunRecord) -> String {
     format!("/v1/runs/{}", run.id)
 }
 
-/// `POST /v1/runs`.
+/// Whether the request says `Cache-Control: no-cache` (RFC 9111, section 5.2.1.4): the
+/// client wants the run computed, not answered from an earlier run's results.
+fn refuses_reuse(req: &HttpRequest) -> bool {
+    req.headers()
+        .get_all(header::CACHE_CONTROL)
+        .filter_map(|v| v.to_str().ok())
+        .flat_map(|v| v.split(','))
+        .any(|d| d.trim().eq_ignore_ascii_case("no-cache"))
+}
+
+/// `POST /v1/runs`: `202` with the run; a run answered from an earlier run's results
+/// (`reused_from`) is already `succeeded` in that answer.
 pub async fn create(
     state: web::Data<AppState>,
     req: HttpRequest,
@@ -83,16 +95,29 @@ pub async fn create(
 ) -> Result<HttpResponse, ApiError> {
     let key = idempotency_key(&req)?;
     let body = read_body(&req, payload, state.config.body_limit).await?;
-    let limits = state.config.limits();
-    let new = web::block(move || domain::prepare(&body, key, &limits))
-        .await
-        .map_err(|e| ApiError::Internal(format!("validation did not complete: {e}").into()))?
-        .map_err(ApiError::InvalidJob)?;
+    let mut new =
+        domain::prepare_submission(&state.store, body.to_vec(), key, state.config.limits())
+            .await
+            .map_err(|e| match e {
+                domain::SubmissionError::Invalid(doc) => ApiError::InvalidJob(doc),
+                other => ApiError::internal(other),
+            })?;
+    new.allow_reuse = !refuses_reuse(&req);
     let (run, replayed) = match state.store.submit(&new).await.map_err(ApiError::internal)? {
         Submitted::Created(run) => {
             state.wake.notify_waiters();
             metrics::counter!("demefix_runs_submitted_total").increment(1);
             tracing::info!(run_id = %run.id, "run queued");
+            (run, false)
+        }
+        Submitted::Reused(run) => {
+            metrics::counter!("demefix_runs_submitted_total").increment(1);
+            metrics::counter!("demefix_runs_reused_total").increment(1);
+            tracing::info!(
+                run_id = %run.id,
+                reused_from = run.reused_from.as_deref().unwrap_or_default(),
+                "run answered from an earlier run's results"
+            );
             (run, false)
         }
         Submitted::Existing(run) => (run, true),
@@ -101,8 +126,10 @@ pub async fn create(
     let mut response = HttpResponse::Accepted();
     response
         .insert_header((header::LOCATION, location(&run)))
-        .insert_header((header::RETRY_AFTER, RETRY_AFTER_SECS))
         .content_type("application/json");
+    if !run.status.is_finished() {
+        response.insert_header((header::RETRY_AFTER, RETRY_AFTER_SECS));
+    }
     if replayed {
         response.insert_header(("Idempotent-Replayed", "true"));
     }

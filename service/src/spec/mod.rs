@@ -8,8 +8,9 @@
 //! defaults filled in. Matrix checks are those of `demefix_science::migration::resolve`; this
 //! module only maps their [`MatrixIssue`]s to pointers.
 //!
-//! Normalisation: `selection.s` is always a list; `matrix_csv` becomes the numeric `matrix`
-//! (so the spec hash does not depend on CSV formatting); `-0.0` becomes `0.0`; every
+//! Normalisation: `selection.s` is always a list; `matrix_csv` and `matrix_ref` become the
+//! numeric `matrix` (so the spec hash depends on the matrix, never on how it was sent, and a
+//! stored spec can be recomputed without the store); `-0.0` becomes `0.0`; every
 //! optional member with a default is written out. Defaults: `selection.scope` `deme`,
 //! `migration.self_flows` `keep`, `start` `["uniform"]`, `method.kind` `auto`,
 //! `method.replicates` [`DEFAULT_REPLICATES`], `method.chunk_size` [`DEFAULT_CHUNK_SIZE`],
@@ -17,7 +18,13 @@
 //! `outputs.arrival_fractions` `[]`, `outputs.sensitivity` `false`.
 
 pub mod csv;
+mod stored;
 mod walk;
+
+pub use stored::{
+    is_sha256_hex, matrix_csv_text, matrix_document, matrix_ref, sha256_of_ref, FetchedMatrix,
+    MatrixRefs, NoStoredMatrices, RefLookup, REF_PREFIX,
+};
 
 use crate::problem::{Pointer, Problem};
 use demefix_science::ensemble::EnsembleConfig;
@@ -178,7 +185,8 @@ pub struct OutputsSpec {
     pub times: bool,
     /// Frequencies in `(0, 1]` whose first arrival per deme ensembles record.
     pub arrival_fractions: Vec<f64>,
-    /// Report sensitivities to migration entries (not computed yet).
+    /// Report the link sensitivities of every result (exact method, death-birth and
+    /// birth-death).
     pub sensitivity: bool,
 }
 
@@ -205,6 +213,15 @@ pub struct JobSpec {
     pub method: MethodSpec,
     /// What to report.
     pub outputs: OutputsSpec,
+}
+
+/// How the warning of [`ValidatedJob::pick_seed`] begins.
+const PICKED_SEED_WARNING: &str = "no method.seed was given:";
+
+/// Whether `warning` is the one [`ValidatedJob::pick_seed`] adds: it belongs to the
+/// submission that had no seed, not to a later one that sends the recorded seed.
+pub fn is_picked_seed_warning(warning: &str) -> bool {
+    warning.starts_with(PICKED_SEED_WARNING)
 }
 
 /// Settings that come from the deployment, not from the job.
@@ -311,7 +328,7 @@ impl ValidatedJob {
         let seed = seed % MAX_EXACT_INTEGER;
         self.spec.method.seed = Some(seed);
         self.warnings.push(format!(
-            "no method.seed was given: picked {seed} and recorded it in spec.method.seed; \
+            "{PICKED_SEED_WARNING} picked {seed} and recorded it in spec.method.seed; \
              send it again to reproduce this run"
         ));
     }
@@ -336,12 +353,15 @@ enum Locator {
     Json(Pointer),
     /// `migration.matrix_csv`: one pointer; details name the line and field.
     Csv(Pointer, Vec<usize>),
+    /// `migration.matrix_ref`: one pointer; details name the row and column of the stored
+    /// matrix (counted from 0, as in `migration.matrix`).
+    Stored(Pointer),
 }
 
 impl Locator {
     fn whole(&self) -> &Pointer {
         match self {
-            Locator::Json(p) | Locator::Csv(p, _) => p,
+            Locator::Json(p) | Locator::Csv(p, _) | Locator::Stored(p) => p,
         }
     }
 
@@ -349,6 +369,7 @@ impl Locator {
         match self {
             Locator::Json(p) => (p.index(i), String::new()),
             Locator::Csv(p, lines) => (p.clone(), csv_line(lines, i)),
+            Locator::Stored(p) => (p.clone(), format!("stored matrix, row {i}")),
         }
     }
 
@@ -359,6 +380,7 @@ impl Locator {
                 p.clone(),
                 format!("{}, field {}", csv_line(lines, i), j + 1),
             ),
+            Locator::Stored(p) => (p.clone(), format!("stored matrix, row {i}, column {j}")),
         }
     }
 }
@@ -402,19 +424,35 @@ pub fn is_valid_id(id: &str) -> bool {
 /// Start keywords, which therefore cannot be deme ids.
 const START_KEYWORDS: &[&str] = &["uniform", "at_birth"];
 
-/// Parses raw request bytes (JSON text) and validates them.
-pub fn parse_bytes(bytes: &[u8], limits: &Limits) -> Result<ValidatedJob, Vec<Problem>> {
-    match serde_json::from_slice::<Value>(bytes) {
-        Ok(v) => validate(&v, limits),
-        Err(e) => Err(vec![Problem::new(
+/// Parses raw request bytes as JSON text; invalid JSON is one problem at the root pointer.
+pub fn parse_json(bytes: &[u8]) -> Result<Value, Vec<Problem>> {
+    serde_json::from_slice::<Value>(bytes).map_err(|e| {
+        vec![Problem::new(
             &Pointer::root(),
             format!("the request body is not valid JSON: {e}"),
-        )]),
-    }
+        )]
+    })
 }
 
-/// Validates a job document, returning every problem found when it is not acceptable.
+/// Parses raw request bytes (JSON text) and validates them, without a matrix store.
+pub fn parse_bytes(bytes: &[u8], limits: &Limits) -> Result<ValidatedJob, Vec<Problem>> {
+    validate(&parse_json(bytes)?, limits)
+}
+
+/// Validates a job document without a matrix store (a `matrix_ref` is reported as
+/// unresolvable here), returning every problem found when it is not acceptable.
 pub fn validate(doc: &Value, limits: &Limits) -> Result<ValidatedJob, Vec<Problem>> {
+    validate_with(doc, limits, &NoStoredMatrices)
+}
+
+/// Validates a job document, resolving `migration.matrix_ref` through `refs`: a stored
+/// matrix then goes through exactly the checks of an inline one, and becomes the spec's
+/// `migration.matrix`.
+pub fn validate_with(
+    doc: &Value,
+    limits: &Limits,
+    refs: &dyn MatrixRefs,
+) -> Result<ValidatedJob, Vec<Problem>> {
     let mut w = Walker::default();
     let root = Pointer::root();
     let Some(top) = w.object(doc, &root, TOP_FIELDS) else {
@@ -449,7 +487,7 @@ pub fn validate(doc: &Value, limits: &Limits) -> Result<ValidatedJob, Vec<Proble
     });
     let migration = w
         .required(top, &root, "migration")
-        .and_then(|v| migration_parts(&mut w, v, &root.key("migration"), raw_ids.as_deref()));
+        .and_then(|v| migration_parts(&mut w, v, &root.key("migration"), raw_ids.as_deref(), refs));
     let selection = w
         .required(top, &root, "selection")
         .and_then(|v| selection(&mut w, v, &root.key("selection")));
@@ -645,11 +683,6 @@ fn finish(
                 .to_owned(),
         );
     }
-    if spec.outputs.sensitivity {
-        warnings.push(
-            "outputs.sensitivity is not computed yet; no sensitivities are reported".to_owned(),
-        );
-    }
 
     let states = population.state_count();
     let kind_at = root.key("method").key("kind");
@@ -675,6 +708,22 @@ fn finish(
             ResolvedMethod::Approximation
         }
     };
+    if spec.outputs.sensitivity {
+        let exact = matches!(method, ResolvedMethod::Exact { .. });
+        if !exact {
+            warnings.push(
+                "outputs.sensitivity comes from the exact method only so far; this job's \
+                 method does not report link sensitivities"
+                    .to_owned(),
+            );
+        } else if rule == Rule::WrightFisher {
+            warnings.push(
+                "outputs.sensitivity is computed for death_birth and birth_death only so far; \
+                 none are reported for wright_fisher"
+                    .to_owned(),
+            );
+        }
+    }
     if !spec.outputs.arrival_fractions.is_empty() && method != ResolvedMethod::Ensemble {
         warnings.push(
             "arrival times come from ensembles only; this job's method does not report them"
@@ -804,6 +853,7 @@ fn migration_parts(
     v: &Value,
     at: &Pointer,
     ids: Option<&[String]>,
+    refs: &dyn MatrixRefs,
 ) -> Option<MigrationParts> {
     let map = w.object(
         v,
@@ -892,29 +942,7 @@ fn migration_parts(
                 at: Locator::Csv(csv_at, parsed.lines),
             })
         }
-        _ => {
-            let ref_at = at.key("matrix_ref");
-            if let Some(r) = w.string(&map["matrix_ref"], &ref_at) {
-                let ok = r.strip_prefix("sha256:").is_some_and(|h| {
-                    h.len() == 64
-                        && h.bytes()
-                            .all(|b| b.is_ascii_digit() || (b'a'..=b'f').contains(&b))
-                });
-                if ok {
-                    w.report(
-                        &ref_at,
-                        "matrix_ref names a matrix stored by the service, which resolves it; \
-                         the command line cannot: send `matrix` or `matrix_csv`",
-                    );
-                } else {
-                    w.report(
-                        &ref_at,
-                        "must be `sha256:` followed by 64 lowercase hex digits",
-                    );
-                }
-            }
-            None
-        }
+        _ => stored_matrix(w, &map["matrix_ref"], &at.key("matrix_ref"), refs),
     };
     Some(MigrationParts {
         orientation,
@@ -922,6 +950,50 @@ fn migration_parts(
         self_flows,
         self_flows_at,
     })
+}
+
+/// `migration.matrix_ref`: the stored matrix it names, through `refs`.
+fn stored_matrix(
+    w: &mut Walker,
+    v: &Value,
+    ref_at: &Pointer,
+    refs: &dyn MatrixRefs,
+) -> Option<SentMatrix> {
+    let r = w.string(v, ref_at)?;
+    let Some(sha256) = sha256_of_ref(r) else {
+        w.report(
+            ref_at,
+            "must be `sha256:` followed by 64 lowercase hex digits",
+        );
+        return None;
+    };
+    match refs.lookup(sha256) {
+        RefLookup::Found(rows) => Some(SentMatrix {
+            rows: rows
+                .iter()
+                .map(|r| r.iter().copied().map(Some).collect())
+                .collect(),
+            at: Locator::Stored(ref_at.clone()),
+        }),
+        RefLookup::Unknown => {
+            w.report(
+                ref_at,
+                format!(
+                    "no stored matrix has the hash {sha256}: POST the matrix to \
+                             /v1/matrices first, or send `matrix` or `matrix_csv`"
+                ),
+            );
+            None
+        }
+        RefLookup::Unavailable => {
+            w.report(
+                ref_at,
+                "matrix_ref names a matrix stored by the service, which resolves it; \
+                         the command line cannot: send `matrix` or `matrix_csv`",
+            );
+            None
+        }
+    }
 }
 
 fn json_matrix(w: &mut Walker, v: &Value, at: &Pointer) -> Option<SentMatrix> {
@@ -1029,6 +1101,14 @@ fn check_matrix(
         )
     });
     let mut all = issues;
+    // A stored matrix is square: a wrong size is one problem, not one per row as well.
+    if matches!(matrix.at, Locator::Stored(_))
+        && all
+            .iter()
+            .any(|i| matches!(i, MatrixIssue::RowCount { .. }))
+    {
+        all.retain(|i| !matches!(i, MatrixIssue::RowLength { .. }));
+    }
     if shape_ok && entries_only {
         input.rows = placeholder(true);
         if let Err(more) = migration::resolve(&input, &sizes, needed) {
@@ -1048,7 +1128,7 @@ fn check_matrix(
         if rule.is_none() && structural {
             continue;
         }
-        report_issue(w, &issue, matrix, parts, orientation, &names);
+        report_issue(w, &issue, matrix, &parts.self_flows_at, orientation, &names);
     }
     None
 }
@@ -1067,7 +1147,7 @@ fn report_issue(
     w: &mut Walker,
     issue: &MatrixIssue,
     matrix: &SentMatrix,
-    parts: &MigrationParts,
+    self_flows_at: &Pointer,
     orientation: Orientation,
     names: &[String],
 ) {
@@ -1137,7 +1217,7 @@ fn report_issue(
             w.report(matrix.at.whole(), detail)
         }
         MatrixIssue::Retention => w.report(
-            &parts.self_flows_at,
+            self_flows_at,
             "a local-retention probability must lie in [0, 1]",
         ),
     }

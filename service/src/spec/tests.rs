@@ -231,14 +231,137 @@ fn a_split_migration_graph_is_accepted_with_warnings_naming_the_unreachable_deme
     assert!(w.contains("never reaches `a`"), "{w}");
 }
 
+fn reference(v: &Value) -> String {
+    let rows: Vec<Vec<f64>> = serde_json::from_value(v["migration"]["matrix"].clone()).unwrap();
+    let hex = crate::provenance::matrix_sha256(rows.len(), rows.iter().flatten().copied());
+    format!("{REF_PREFIX}{hex}")
+}
+
+fn stored(v: &Value) -> FetchedMatrix {
+    let reference = reference(v);
+    FetchedMatrix {
+        sha256: sha256_of_ref(&reference).unwrap().to_owned(),
+        rows: Some(serde_json::from_value(v["migration"]["matrix"].clone()).unwrap()),
+    }
+}
+
+fn with_ref(v: &Value, reference: &str) -> Value {
+    let mut r = v.clone();
+    r["migration"] = json!({"orientation": "flows", "matrix_ref": reference});
+    r
+}
+
 #[test]
-fn matrix_ref_is_left_to_the_service() {
-    let mut v = base();
-    v["migration"] =
-        json!({"orientation": "flows", "matrix_ref": format!("sha256:{}", "ab".repeat(32))});
+fn without_a_store_matrix_ref_is_an_error_that_says_the_service_resolves_it() {
+    let v = with_ref(&base(), &format!("sha256:{}", "ab".repeat(32)));
     let p = problems(&v);
+    assert_eq!(p.len(), 1, "{p:?}");
     assert_eq!(p[0].pointer, "/migration/matrix_ref");
-    assert!(p[0].detail.contains("service"));
+    assert!(p[0].detail.contains("service"), "{}", p[0].detail);
+    for bad in [
+        "sha256:AB",
+        "md5:00",
+        &format!("sha256:{}", "AB".repeat(32)),
+    ] {
+        let p = problems(&with_ref(&base(), bad));
+        assert_eq!(p[0].pointer, "/migration/matrix_ref");
+        assert!(p[0].detail.contains("64 lowercase hex"), "{}", p[0].detail);
+    }
+}
+
+#[test]
+fn a_resolved_matrix_ref_gives_the_spec_of_the_inline_matrix() {
+    let inline = base();
+    let refd = with_ref(&inline, &reference(&inline));
+    let a = ok(&inline);
+    let b = validate_with(&refd, &Limits::default(), &stored(&inline)).unwrap();
+    assert_eq!(a.spec(), b.spec());
+    assert_eq!(
+        crate::provenance::spec_sha256(a.spec()),
+        crate::provenance::spec_sha256(b.spec())
+    );
+    assert_eq!(a.warnings(), b.warnings());
+}
+
+#[test]
+fn an_unknown_matrix_ref_is_reported_at_its_pointer() {
+    let v = with_ref(&base(), &format!("sha256:{}", "0f".repeat(32)));
+    let p = validate_with(&v, &Limits::default(), &stored(&base())).unwrap_err();
+    assert_eq!(p.len(), 1, "{p:?}");
+    assert_eq!(p[0].pointer, "/migration/matrix_ref");
+    assert!(p[0].detail.contains("/v1/matrices"), "{}", p[0].detail);
+}
+
+#[test]
+fn a_stored_matrix_that_does_not_fit_the_job_is_reported_at_matrix_ref() {
+    // Two demes against a stored 3 x 3 matrix.
+    let mut v = base();
+    v["population"]["demes"] = json!([{"id": "a", "size": 3}, {"id": "b", "size": 4}]);
+    let refd = with_ref(&v, &reference(&base()));
+    let p = validate_with(&refd, &Limits::default(), &stored(&base())).unwrap_err();
+    assert_eq!(p.len(), 1, "{p:?}");
+    assert_eq!(p[0].pointer, "/migration/matrix_ref");
+    assert!(p[0].detail.contains("3 rows"), "{}", p[0].detail);
+    // A stored matrix with an empty column (nothing moves into c) fails death-birth.
+    let mut empty = base();
+    empty["migration"]["matrix"] = json!([[1, 4, 0], [3, 0, 0], [1, 1, 0]]);
+    let refd = with_ref(&empty, &reference(&empty));
+    let p = validate_with(&refd, &Limits::default(), &stored(&empty)).unwrap_err();
+    assert_eq!(p[0].pointer, "/migration/matrix_ref");
+    assert!(p[0].detail.contains("deme `c`"), "{}", p[0].detail);
+}
+
+#[test]
+fn matrix_ref_names_the_stored_hash() {
+    let v = with_ref(&base(), &reference(&base()));
+    assert_eq!(
+        matrix_ref(&v).map(str::to_owned),
+        sha256_of_ref(&reference(&base())).map(str::to_owned)
+    );
+    assert_eq!(matrix_ref(&base()), None);
+    assert_eq!(matrix_ref(&with_ref(&base(), "sha256:00")), None);
+}
+
+#[test]
+fn a_matrix_document_is_checked_for_shape_and_entries_only() {
+    let rows = matrix_document(&json!({"matrix": [[0, 1], [-0.0, 2.5]]})).unwrap();
+    assert_eq!(rows, vec![vec![0.0, 1.0], vec![0.0, 2.5]]);
+    assert!(rows[1][0].is_sign_positive());
+    // A row of zeros depends on the job's orientation and rule: accepted here.
+    assert!(matrix_document(&json!({"matrix": [[0, 0], [0, 0]]})).is_ok());
+    let pointers = |doc: Value| -> Vec<String> {
+        matrix_document(&doc)
+            .unwrap_err()
+            .into_iter()
+            .map(|p| p.pointer)
+            .collect()
+    };
+    assert_eq!(
+        pointers(json!({"matrix": [[0, -1, 1], [1, 0], [1, "x", 0]], "demes": 3})),
+        vec!["/demes", "/matrix/2/1", "/matrix/0/1", "/matrix/1"]
+    );
+    assert_eq!(pointers(json!({"matrix": []})), vec!["/matrix"]);
+    assert_eq!(pointers(json!({})), vec!["/matrix"]);
+    assert_eq!(pointers(json!([[1]])), vec![""]);
+}
+
+#[test]
+fn a_csv_matrix_gives_the_rows_of_the_same_json_matrix_and_reports_lines() {
+    let csv = matrix_csv_text("a,b\n0,1\n-0.0,2.5\n").unwrap();
+    let json = matrix_document(&json!({"matrix": [[0, 1], [0, 2.5]]})).unwrap();
+    assert_eq!(csv, json);
+    let p = matrix_csv_text("0,1\n2,NaN\n3\n").unwrap_err();
+    assert!(p.iter().all(|p| p.pointer.is_empty()), "{p:?}");
+    let details: Vec<&str> = p.iter().map(|p| p.detail.as_str()).collect();
+    assert!(
+        details.iter().any(|d| d.starts_with("line 3: ")),
+        "{details:?}"
+    );
+    assert!(
+        details.iter().any(|d| d.starts_with("line 2, field 2")),
+        "{details:?}"
+    );
+    assert!(matrix_csv_text("\n\n").is_err());
 }
 
 #[test]

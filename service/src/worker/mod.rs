@@ -13,6 +13,11 @@
 //! after every chunk, guarded by the lease token; a run interrupted by a crash or a shutdown
 //! resumes from its last committed chunk when it is claimed again and ends byte-identical to
 //! an uninterrupted run.
+//!
+//! Metrics: `demefix_runs_finished_total{status}` counts accepted completions;
+//! `demefix_ensemble_replicates_total` counts the ensemble replicates of every committed
+//! chunk (Prometheus `rate()` of it is the replicates per second), and
+//! `demefix_ensemble_chunk_replicates_per_second` is the rate of the most recent chunk.
 
 use crate::compute::{self, ComputeError, EnsembleCheckpoint};
 use crate::config::Config;
@@ -21,9 +26,10 @@ use crate::domain::Finish;
 use crate::provenance::Provenance;
 use crate::spec;
 use demefix_science::ensemble::ProgressObserver;
+use std::cell::Cell;
 use std::sync::atomic::{AtomicBool, AtomicU64, AtomicUsize, Ordering};
 use std::sync::Arc;
-use std::time::Duration;
+use std::time::{Duration, Instant};
 use tokio::sync::{watch, Notify};
 use tokio::task::JoinHandle;
 use tracing::{error, info, info_span, warn, Instrument};
@@ -165,6 +171,8 @@ impl Workers {
             token: token.clone(),
             lease: self.config.lease,
             flags: flags.clone(),
+            committed: Cell::new(resume.as_ref().map_or(0, replicates_in)),
+            last_commit: Cell::new(Instant::now()),
         };
         let computed = tokio::task::spawn_blocking(move || {
             let _entered = span.enter();
@@ -176,6 +184,8 @@ impl Workers {
                 compute::run_resumable(&job, &pool, &observer, cancel, resume, &mut commit);
             if had_checkpoint && matches!(outcome, Err(ComputeError::Ensemble(_))) {
                 warn!("the checkpoint does not belong to this job's settings; starting afresh");
+                committer.restart();
+                let mut commit = |cp: &EnsembleCheckpoint| committer.commit(cp);
                 outcome = compute::run_resumable(&job, &pool, &observer, cancel, None, &mut commit);
             }
             (job, outcome)
@@ -189,16 +199,23 @@ impl Workers {
                 let mut provenance = Provenance::new(&job, b"", &outcome.method, threads);
                 provenance.request_sha256 = claim.request_sha256.clone();
                 warnings.extend(outcome.warnings);
+                let sensitivity = if outcome.sensitivity.is_empty() {
+                    Ok(None)
+                } else {
+                    serde_json::to_string(&outcome.sensitivity).map(Some)
+                };
                 match (
                     serde_json::to_string(&provenance),
                     serde_json::to_string(&outcome.results),
+                    sensitivity,
                 ) {
-                    (Ok(provenance), Ok(results)) => Finish::Succeeded {
+                    (Ok(provenance), Ok(results), Ok(sensitivity)) => Finish::Succeeded {
                         provenance,
                         results,
+                        sensitivity,
                         warnings,
                     },
-                    (Err(e), _) | (_, Err(e)) => Finish::Failed {
+                    (Err(e), _, _) | (_, Err(e), _) | (_, _, Err(e)) => Finish::Failed {
                         error: format!("the results could not be written: {e}"),
                     },
                 }
@@ -246,6 +263,15 @@ struct RunFlags {
     done: AtomicU64,
 }
 
+/// Replicates merged into `checkpoint`, over all its cells.
+fn replicates_in(checkpoint: &EnsembleCheckpoint) -> u64 {
+    checkpoint
+        .cells
+        .iter()
+        .map(|cell| cell.next_replicate())
+        .sum()
+}
+
 /// Commits ensemble checkpoints from the computing thread, through the lease token.
 struct Committer {
     runtime: tokio::runtime::Handle,
@@ -254,6 +280,10 @@ struct Committer {
     token: String,
     lease: Duration,
     flags: Arc<RunFlags>,
+    /// Replicates in the last checkpoint committed (or resumed from).
+    committed: Cell<u64>,
+    /// When the last checkpoint was committed (or the computation started).
+    last_commit: Cell<Instant>,
 }
 
 impl Committer {
@@ -273,10 +303,12 @@ impl Committer {
             Some(&text),
         ));
         match written {
-            Ok(Some(false)) => {}
-            Ok(Some(true)) => {
-                self.flags.user_cancel.store(true, Ordering::SeqCst);
-                self.flags.cancel.store(true, Ordering::SeqCst);
+            Ok(Some(cancel_requested)) => {
+                self.count_committed(checkpoint);
+                if cancel_requested {
+                    self.flags.user_cancel.store(true, Ordering::SeqCst);
+                    self.flags.cancel.store(true, Ordering::SeqCst);
+                }
             }
             Ok(None) => {
                 self.flags.lease_lost.store(true, Ordering::SeqCst);
@@ -284,6 +316,31 @@ impl Committer {
             }
             Err(e) => warn!(error = %e, "checkpoint not committed; the next chunk will try again"),
         }
+    }
+
+    /// Adds the replicates `checkpoint` committed beyond the previous one to the metrics.
+    fn count_committed(&self, checkpoint: &EnsembleCheckpoint) {
+        let now_in = replicates_in(checkpoint);
+        let new = now_in.saturating_sub(self.committed.replace(now_in));
+        let seconds = self
+            .last_commit
+            .replace(Instant::now())
+            .elapsed()
+            .as_secs_f64();
+        if new == 0 {
+            return;
+        }
+        metrics::counter!("demefix_ensemble_replicates_total").increment(new);
+        if seconds > 0.0 {
+            metrics::gauge!("demefix_ensemble_chunk_replicates_per_second")
+                .set(new as f64 / seconds);
+        }
+    }
+
+    /// Forgets the checkpoint resumed from (the computation starts afresh).
+    fn restart(&self) {
+        self.committed.set(0);
+        self.last_commit.set(Instant::now());
     }
 }
 

@@ -4,7 +4,7 @@
 //! equal a central finite difference of the exact solver"; formulas of references.md §5).
 
 use demefix_science::exact::{self, ExactConfig};
-use demefix_science::weak::{self, WeakSelection};
+use demefix_science::weak::{self, PairSolver, WeakConfig, WeakSelection};
 use demefix_science::well_mixed;
 use demefix_science::{Model, Population, Rule, Scope, Start, StochasticMatrix};
 
@@ -221,6 +221,41 @@ fn one_deme_slopes_are_the_well_mixed_derivatives() {
                 (weak.slope[0] - fd).abs() < SLOPE_TOLERANCE * fd,
                 "{rule:?} N={n}: {fd}"
             );
+        }
+    }
+}
+
+#[test]
+fn the_matrix_free_solver_matches_finite_differences_of_the_exact_chain() {
+    // The iterative (deflated, matrix-free) pair solver on the island models above, against
+    // the exact chain, with the same tolerance as the dense solver.
+    let config = WeakConfig {
+        solver: PairSolver::Iterative,
+        ..WeakConfig::default()
+    };
+    for (sizes, rows) in [two_demes(), three_demes(), (vec![1, 4, 2], three_demes().1)] {
+        for (rule, scope) in [
+            (Rule::DeathBirth, Scope::Deme),
+            (Rule::DeathBirth, Scope::Neighbourhood),
+            (Rule::WrightFisher, Scope::Deme),
+            (Rule::WrightFisher, Scope::Neighbourhood),
+            (Rule::BirthDeath, Scope::Deme),
+        ] {
+            let model = build(&sizes, &rows, rule, scope);
+            let solved = weak::first_order_with(&model, &config).unwrap();
+            assert_eq!(solved.info.solver, PairSolver::Iterative);
+            let fd = richardson(|s| exact_rho(&model, s));
+            let neutral = exact_rho(&model, 0.0);
+            for k in 0..model.demes() {
+                let weak = &solved.coefficients;
+                assert!((weak.neutral[k] - neutral[k]).abs() < 1e-11);
+                assert!(
+                    (weak.slope[k] - fd[k]).abs() <= SLOPE_TOLERANCE * fd[k].abs(),
+                    "{rule:?} {scope:?} {sizes:?} deme {k}: {} vs {}",
+                    weak.slope[k],
+                    fd[k]
+                );
+            }
         }
     }
 }

@@ -145,6 +145,37 @@ pub struct Running {
     shutdown: watch::Sender<bool>,
 }
 
+/// Runs on each compute thread as it starts: the lowest scheduling priority (niceness 19 on
+/// Linux, which needs no privilege), so that request handling preempts computation and the
+/// API stays responsive while every worker is busy. Computation still gets every cycle the
+/// requests leave; results do not depend on it.
+fn lower_compute_priority(index: usize) {
+    if let Err(e) =
+        thread_priority::set_current_thread_priority(thread_priority::ThreadPriority::Min)
+    {
+        tracing::warn!(thread = index, error = ?e, "cannot lower the compute thread's priority");
+    }
+}
+
+/// Checkpoints the WAL every [`crate::db::WAL_CHECKPOINT_EVERY`] until shutdown, off the
+/// request path (the writer connection never checkpoints on a commit).
+fn spawn_wal_checkpoints(store: Store, mut shutdown: watch::Receiver<bool>) -> JoinHandle<()> {
+    tokio::spawn(async move {
+        let mut tick = tokio::time::interval(crate::db::WAL_CHECKPOINT_EVERY);
+        tick.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Delay);
+        loop {
+            tokio::select! {
+                _ = tick.tick() => {
+                    if let Err(e) = store.checkpoint_wal().await {
+                        tracing::warn!(error = %e, "WAL checkpoint failed; retrying");
+                    }
+                }
+                _ = shutdown.changed() => break,
+            }
+        }
+    })
+}
+
 /// Opens the database, starts the workers and the HTTP server, and returns at once.
 pub async fn start(config: Config) -> Result<Running, StartError> {
     let config = Arc::new(config);
@@ -154,12 +185,14 @@ pub async fn start(config: Config) -> Result<Running, StartError> {
         rayon::ThreadPoolBuilder::new()
             .num_threads(config.workers)
             .thread_name(|i| format!("demefix-compute-{i}"))
+            .start_handler(lower_compute_priority)
             .build()?,
     );
     let wake = Arc::new(Notify::new());
     let alive = Arc::new(AtomicUsize::new(0));
     let (shutdown, shutdown_rx) = watch::channel(false);
-    let workers = Workers {
+    let wal_task = spawn_wal_checkpoints(store.clone(), shutdown_rx.clone());
+    let mut workers = Workers {
         store: store.clone(),
         config: config.clone(),
         pool,
@@ -168,6 +201,7 @@ pub async fn start(config: Config) -> Result<Running, StartError> {
         alive: alive.clone(),
     }
     .spawn();
+    workers.push(wal_task);
 
     let state = web::Data::new(AppState {
         store: store.clone(),

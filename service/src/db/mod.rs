@@ -36,6 +36,8 @@ const BUSY_TIMEOUT: Duration = Duration::from_secs(10);
 const WRITER_ACQUIRE_TIMEOUT: Duration = Duration::from_secs(30);
 /// Read-only connections.
 const READERS: u32 = 4;
+/// Interval of the background WAL checkpoint (the writer never checkpoints on a commit).
+pub const WAL_CHECKPOINT_EVERY: Duration = Duration::from_millis(500);
 
 /// A failure of the store.
 #[derive(Debug, thiserror::Error)]
@@ -95,6 +97,8 @@ pub enum Cancelled {
 pub struct Store {
     writer: SqlitePool,
     reader: SqlitePool,
+    /// One read-write connection that only runs WAL checkpoints (see [`Store::checkpoint_wal`]).
+    maintenance: SqlitePool,
 }
 
 fn now_text() -> String {
@@ -136,6 +140,9 @@ impl Store {
             .busy_timeout(BUSY_TIMEOUT)
             .foreign_keys(true)
             .synchronous(SqliteSynchronous::Full);
+        // The writer never checkpoints the WAL itself (`wal_autocheckpoint = 0`), so a commit
+        // never pays for copying the log into the database; `checkpoint_wal` does it on its
+        // own connection.
         let writer = SqlitePoolOptions::new()
             .max_connections(1)
             .min_connections(1)
@@ -145,21 +152,44 @@ impl Store {
             .connect_with(
                 base.clone()
                     .create_if_missing(true)
-                    .journal_mode(SqliteJournalMode::Wal),
+                    .journal_mode(SqliteJournalMode::Wal)
+                    .pragma("wal_autocheckpoint", "0"),
             )
             .await?;
         sqlx::migrate!("./migrations").run(&writer).await?;
+        let maintenance = SqlitePoolOptions::new()
+            .max_connections(1)
+            .connect_with(base.clone().pragma("wal_autocheckpoint", "0"))
+            .await?;
         let reader = SqlitePoolOptions::new()
             .max_connections(READERS)
             .connect_with(base.read_only(true))
             .await?;
-        Ok(Self { writer, reader })
+        Ok(Self {
+            writer,
+            reader,
+            maintenance,
+        })
     }
 
-    /// Closes both pools (waits for connections in use to be returned).
+    /// Closes every pool (waits for connections in use to be returned), after a last WAL
+    /// checkpoint.
     pub async fn close(&self) {
+        let _ = self.checkpoint_wal().await;
         self.writer.close().await;
         self.reader.close().await;
+        self.maintenance.close().await;
+    }
+
+    /// Copies committed WAL frames into the database file without waiting for readers or
+    /// writers (`PRAGMA wal_checkpoint(PASSIVE)`), on the maintenance connection; the server
+    /// calls it every [`WAL_CHECKPOINT_EVERY`]. Returns the frames in the log and those
+    /// checkpointed.
+    pub async fn checkpoint_wal(&self) -> Result<(i64, i64), DbError> {
+        let row = sqlx::query("PRAGMA wal_checkpoint(PASSIVE)")
+            .fetch_one(&self.maintenance)
+            .await?;
+        Ok((row.try_get(1)?, row.try_get(2)?))
     }
 
     /// Stores `new` (and its matrix, once per hash), honouring its idempotency key first; then,

@@ -9,7 +9,10 @@ mod api {
     mod queue;
 }
 
-use api::helpers::{ensemble_job, small_job, spawn_app, spawn_app_with, wait_finished, TempDir};
+use api::helpers::{
+    ensemble_job, free_port, small_job, spawn_app, spawn_app_with, spawn_serve, wait_finished,
+    ServeProcess, TempDir,
+};
 use serde_json::{json, Value};
 use std::collections::BTreeSet;
 use std::time::Duration;
@@ -457,56 +460,20 @@ fn the_registered_routes_are_the_paths_of_openapi_yaml() {
     assert_eq!(registered, documented);
 }
 
-/// A `demefix serve` child process on a fresh port.
-struct Child {
-    process: std::process::Child,
-    base: String,
-}
-
-impl Drop for Child {
-    /// A failing test must not leave a server behind.
-    fn drop(&mut self) {
-        let _ = self.process.kill();
-        let _ = self.process.wait();
-    }
-}
-
-fn free_port() -> u16 {
-    std::net::TcpListener::bind("127.0.0.1:0")
-        .unwrap()
-        .local_addr()
-        .unwrap()
-        .port()
-}
-
-async fn spawn_child(dir: &TempDir) -> Child {
+/// A `demefix serve` child process on a fresh port, its database in `dir`, one worker and
+/// short leases.
+async fn spawn_child(dir: &TempDir) -> ServeProcess {
     let port = free_port();
-    let mut child = Child {
-        process: std::process::Command::new(env!("CARGO_BIN_EXE_demefix"))
-            .arg("serve")
-            .env("DEMEFIX_BIND", format!("127.0.0.1:{port}"))
-            .env("DEMEFIX_DB", dir.0.join("demefix.db"))
-            .env("DEMEFIX_WORKERS", "1")
-            .env("DEMEFIX_LEASE_SECS", "2")
-            .env("DEMEFIX_HEARTBEAT_SECS", "1")
-            .env("RUST_LOG", "warn")
-            .stdout(std::process::Stdio::null())
-            .stderr(std::process::Stdio::null())
-            .spawn()
-            .expect("spawn demefix serve"),
-        base: format!("http://127.0.0.1:{port}"),
-    };
-    let client = reqwest::Client::new();
-    for _ in 0..200 {
-        if let Ok(r) = client.get(format!("{}/readyz", child.base)).send().await {
-            if r.status() == 200 {
-                return child;
-            }
-        }
-        tokio::time::sleep(Duration::from_millis(50)).await;
-    }
-    let _ = child.process.kill();
-    panic!("demefix serve did not become ready");
+    let mut command = std::process::Command::new(env!("CARGO_BIN_EXE_demefix"));
+    command
+        .arg("serve")
+        .env("DEMEFIX_BIND", format!("127.0.0.1:{port}"))
+        .env("DEMEFIX_DB", dir.0.join("demefix.db"))
+        .env("DEMEFIX_WORKERS", "1")
+        .env("DEMEFIX_LEASE_SECS", "2")
+        .env("DEMEFIX_HEARTBEAT_SECS", "1")
+        .env("RUST_LOG", "warn");
+    spawn_serve(command, port, None).await
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]

@@ -169,3 +169,64 @@ pub fn ensemble_job(replicates: u64, chunk: u64) -> Value {
         "outputs": {"arrival_fractions": [0.5, 1]}
     })
 }
+
+/// A free local port (bound and released at once).
+pub fn free_port() -> u16 {
+    std::net::TcpListener::bind("127.0.0.1:0")
+        .unwrap()
+        .local_addr()
+        .unwrap()
+        .port()
+}
+
+/// A `demefix serve` child process, killed on drop (a failing test leaves none behind).
+pub struct ServeProcess {
+    pub process: std::process::Child,
+    pub base: String,
+}
+
+impl Drop for ServeProcess {
+    fn drop(&mut self) {
+        let _ = self.process.kill();
+        let _ = self.process.wait();
+    }
+}
+
+/// Spawns `command` (a `demefix serve` listening on `port`, stdout discarded) and waits until
+/// `/readyz` answers 200; `log` is where its stderr goes, printed if it never gets ready.
+pub async fn spawn_serve(
+    mut command: std::process::Command,
+    port: u16,
+    log: Option<&std::path::Path>,
+) -> ServeProcess {
+    command.stdout(std::process::Stdio::null());
+    match log {
+        Some(path) => command.stderr(std::fs::File::create(path).expect("create the log file")),
+        None => command.stderr(std::process::Stdio::null()),
+    };
+    let mut serve = ServeProcess {
+        process: command.spawn().expect("spawn demefix serve"),
+        base: format!("http://127.0.0.1:{port}"),
+    };
+    let read_log = || log.map(|p| std::fs::read_to_string(p).unwrap_or_default());
+    let client = reqwest::Client::new();
+    let mut last = String::from("no answer");
+    for _ in 0..1_200 {
+        match client.get(format!("{}/readyz", serve.base)).send().await {
+            Ok(r) if r.status() == 200 => return serve,
+            Ok(r) => last = format!("{}: {}", r.status(), r.text().await.unwrap_or_default()),
+            Err(e) => last = e.to_string(),
+        }
+        if let Ok(Some(exit)) = serve.process.try_wait() {
+            panic!(
+                "demefix serve exited ({exit:?}):\n{}",
+                read_log().unwrap_or_default()
+            );
+        }
+        tokio::time::sleep(Duration::from_millis(50)).await;
+    }
+    panic!(
+        "demefix serve did not become ready (last /readyz: {last}):\n{}",
+        read_log().unwrap_or_default()
+    );
+}

@@ -2,7 +2,10 @@
 //! metrics the queue reports (in a `demefix serve` child process configured by a TOML file,
 //! so its metrics recorder is its own).
 
-use super::helpers::{ensemble_job, small_job, spawn_app, spawn_app_with, wait_finished, TempDir};
+use super::helpers::{
+    ensemble_job, free_port, small_job, spawn_app, spawn_app_with, spawn_serve, wait_finished,
+    ServeProcess, TempDir,
+};
 use serde_json::{json, Value};
 use std::collections::{BTreeMap, BTreeSet};
 use std::time::{Duration, Instant};
@@ -353,19 +356,6 @@ async fn a_concurrent_write_storm_sees_no_5xx_and_every_202_is_stored() {
     app.stop().await;
 }
 
-/// A `demefix serve` child process (killed on drop, so a failing test leaves none behind).
-struct ServeProcess {
-    process: std::process::Child,
-    base: String,
-}
-
-impl Drop for ServeProcess {
-    fn drop(&mut self) {
-        let _ = self.process.kill();
-        let _ = self.process.wait();
-    }
-}
-
 /// Starts `demefix serve` with `DEMEFIX_CONFIG` naming `config_file` and `env` set on top
 /// (every other `DEMEFIX_*` variable removed), its log in `log`, and waits until it is ready.
 async fn serve_with_config_file(
@@ -382,37 +372,8 @@ async fn serve_with_config_file(
     command
         .env(demefix::config::CONFIG_FILE_VAR, config_file)
         .env("RUST_LOG", "warn")
-        .envs(env.iter().copied())
-        .stdout(std::process::Stdio::null())
-        .stderr(std::fs::File::create(log).expect("create the log file"));
-    let mut serve = ServeProcess {
-        process: command.spawn().expect("spawn demefix serve"),
-        base: format!("http://127.0.0.1:{port}"),
-    };
-    let client = reqwest::Client::new();
-    let mut last = String::from("no answer");
-    for _ in 0..1_200 {
-        match client.get(format!("{}/readyz", serve.base)).send().await {
-            Ok(r) if r.status() == 200 => return serve,
-            Ok(r) => last = format!("{}: {}", r.status(), r.text().await.unwrap_or_default()),
-            Err(e) => last = e.to_string(),
-        }
-        if let Ok(Some(exit)) = serve.process.try_wait() {
-            let log = std::fs::read_to_string(log).unwrap_or_default();
-            panic!("demefix serve exited ({exit:?}):\n{log}");
-        }
-        tokio::time::sleep(Duration::from_millis(50)).await;
-    }
-    let log = std::fs::read_to_string(log).unwrap_or_default();
-    panic!("demefix serve did not become ready (last /readyz: {last}):\n{log}");
-}
-
-fn free_port() -> u16 {
-    std::net::TcpListener::bind("127.0.0.1:0")
-        .unwrap()
-        .local_addr()
-        .unwrap()
-        .port()
+        .envs(env.iter().copied());
+    spawn_serve(command, port, Some(log)).await
 }
 
 /// The samples of the Prometheus text `text`: `name{labels}` to value.

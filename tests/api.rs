@@ -322,12 +322,7 @@ async fn a_running_ensemble_is_cancelled_and_stays_cancelled() {
         .await
         .unwrap();
     assert_eq!(res.status(), 200);
-    let q: Value = app
-        .get(&format!("/v1/runs/{queued_id}"))
-        .await
-        .json()
-        .await
-        .unwrap();
+    let q: Value = app.get_json(&format!("/v1/runs/{queued_id}")).await;
     assert_eq!(q["status"], "cancelled");
     assert!(q.get("started_at").is_none());
     app.stop().await;
@@ -357,11 +352,8 @@ async fn runs_are_listed_newest_first_with_a_cursor_and_a_status_filter() {
     );
     let next = page["next"].as_str().unwrap();
     let page: Value = app
-        .get(&format!("/v1/runs?limit=3&after={next}"))
-        .await
-        .json()
-        .await
-        .unwrap();
+        .get_json(&format!("/v1/runs?limit=3&after={next}"))
+        .await;
     let second: Vec<&str> = page["runs"]
         .as_array()
         .unwrap()
@@ -377,26 +369,11 @@ async fn runs_are_listed_newest_first_with_a_cursor_and_a_status_filter() {
     for id in &ids {
         app.wait_finished(id, FINISH).await;
     }
-    let ok: Value = app
-        .get("/v1/runs?status=succeeded")
-        .await
-        .json()
-        .await
-        .unwrap();
+    let ok: Value = app.get_json("/v1/runs?status=succeeded").await;
     assert_eq!(ok["runs"].as_array().unwrap().len(), 5);
-    let none: Value = app
-        .get("/v1/runs?status=queued")
-        .await
-        .json()
-        .await
-        .unwrap();
+    let none: Value = app.get_json("/v1/runs?status=queued").await;
     assert_eq!(none["runs"].as_array().unwrap().len(), 0);
-    let series: Value = app
-        .get("/v1/runs?series=elsewhere")
-        .await
-        .json()
-        .await
-        .unwrap();
+    let series: Value = app.get_json("/v1/runs?series=elsewhere").await;
     assert_eq!(series["runs"].as_array().unwrap().len(), 0);
     for bad in [
         "/v1/runs?limit=0",

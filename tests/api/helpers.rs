@@ -94,6 +94,11 @@ impl TestApp {
             .expect("the request is answered")
     }
 
+    /// `GET path`, its body read as JSON.
+    pub async fn get_json(&self, path: &str) -> Value {
+        self.get(path).await.json().await.expect("a JSON body")
+    }
+
     /// Number of stored runs, read from the database.
     pub async fn stored_runs(&self) -> i64 {
         self.running

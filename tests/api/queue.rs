@@ -55,22 +55,12 @@ async fn runs_are_filtered_by_the_time_they_were_submitted() {
         ids[range].iter().rev().cloned().collect()
     };
     // `cut` lies between the second and the third submission.
-    let first: Value = app
-        .get(&format!("/v1/runs/{}", ids[1]))
-        .await
-        .json()
-        .await
-        .unwrap();
+    let first: Value = app.get_json(&format!("/v1/runs/{}", ids[1])).await;
     let second_at = chrono::DateTime::parse_from_rfc3339(first["submitted_at"].as_str().unwrap())
         .unwrap()
         .with_timezone(&chrono::Utc);
     let cut = second_at + chrono::Duration::milliseconds(20);
-    let third: Value = app
-        .get(&format!("/v1/runs/{}", ids[2]))
-        .await
-        .json()
-        .await
-        .unwrap();
+    let third: Value = app.get_json(&format!("/v1/runs/{}", ids[2])).await;
     let third_at =
         chrono::DateTime::parse_from_rfc3339(third["submitted_at"].as_str().unwrap()).unwrap();
     assert!(third_at > cut, "the test's pause separates the submissions");
@@ -167,12 +157,7 @@ async fn run_while_an_intruder_tries_to_rescue_it(
     let id = run["id"].as_str().unwrap().to_owned();
     let deadline = Instant::now() + FINISH;
     let done = loop {
-        let r: Value = app
-            .get(&format!("/v1/runs/{id}"))
-            .await
-            .json()
-            .await
-            .unwrap();
+        let r: Value = app.get_json(&format!("/v1/runs/{id}")).await;
         match r["status"].as_str().unwrap() {
             "queued" => {}
             "running" => {
@@ -267,12 +252,7 @@ async fn a_concurrent_write_storm_sees_no_5xx_and_every_202_is_stored() {
     let busy_id = busy["id"].as_str().unwrap().to_owned();
     let started = Instant::now();
     loop {
-        let r: Value = app
-            .get(&format!("/v1/runs/{busy_id}"))
-            .await
-            .json()
-            .await
-            .unwrap();
+        let r: Value = app.get_json(&format!("/v1/runs/{busy_id}")).await;
         if r["progress"]["done"].as_u64() > Some(0) {
             break;
         }
@@ -343,12 +323,7 @@ async fn a_concurrent_write_storm_sees_no_5xx_and_every_202_is_stored() {
         (CLIENTS * PER_CLIENT + 1) as i64,
         "every 202 is stored, and nothing else"
     );
-    let busy: Value = app
-        .get(&format!("/v1/runs/{busy_id}"))
-        .await
-        .json()
-        .await
-        .unwrap();
+    let busy: Value = app.get_json(&format!("/v1/runs/{busy_id}")).await;
     assert_eq!(
         busy["status"], "running",
         "the workers were busy all along: {busy:#}"

@@ -666,26 +666,65 @@ async fn an_expired_lease_is_rescued_and_the_stale_worker_is_fenced_out() {
         .unwrap()
         .is_none());
 
-    // A's heartbeat and completion are rejected; B's completion is accepted once.
+    // A's heartbeat and completion are rejected once its lease was taken.
     assert_eq!(
         store
-            .heartbeat(&run.id, "token-a", Duration::from_secs(60), 1, None)
+            .heartbeat(&run.id, "token-a", Duration::from_secs(60), 1)
             .await
             .unwrap(),
         None
     );
+    // Only the lease holder appends to the checkpoint log; a later claim gets it in order.
+    assert_eq!(
+        store
+            .commit_chunk(&run.id, "token-a", Duration::from_secs(60), 1, 0, "stale")
+            .await
+            .unwrap(),
+        None
+    );
+    for (seq, step) in ["first", "second"].into_iter().enumerate() {
+        assert_eq!(
+            store
+                .commit_chunk(
+                    &run.id,
+                    "token-b",
+                    Duration::from_secs(0),
+                    1,
+                    seq as u64,
+                    step
+                )
+                .await
+                .unwrap(),
+            Some(false)
+        );
+    }
+    tokio::time::sleep(Duration::from_millis(20)).await;
+    let c = store
+        .claim("token-c", Duration::from_secs(60))
+        .await
+        .unwrap()
+        .expect("the expired lease is rescued again");
+    assert_eq!(c.checkpoint, vec!["first".to_owned(), "second".to_owned()]);
+    assert!(!store.discard_chunks(&run.id, "token-b").await.unwrap());
+    assert!(store.discard_chunks(&run.id, "token-c").await.unwrap());
+    let d = store
+        .claim("token-d", Duration::from_secs(0))
+        .await
+        .unwrap();
+    assert!(d.is_none(), "token-c's lease is live");
     let failed = Finish::Failed {
         error: "stale".to_owned(),
     };
     assert!(!store.finish(&run.id, "token-a", &failed).await.unwrap());
+    assert!(!store.finish(&run.id, "token-b", &failed).await.unwrap());
     let ok = Finish::Succeeded {
         provenance: "{}".to_owned(),
         results: "[]".to_owned(),
         sensitivity: None,
         warnings: vec![],
     };
-    assert!(store.finish(&run.id, "token-b", &ok).await.unwrap());
-    assert!(!store.finish(&run.id, "token-b", &failed).await.unwrap());
+    assert!(store.finish(&run.id, "token-c", &ok).await.unwrap());
+    assert!(!store.finish(&run.id, "token-c", &failed).await.unwrap());
     let stored = store.run(&run.id).await.unwrap().unwrap();
     assert_eq!(stored.status.as_str(), "succeeded");
     assert_eq!(stored.error, None);

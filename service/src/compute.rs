@@ -16,7 +16,9 @@
 
 use crate::document::{LinkSensitivity, RunResult, TimeUnits, SENSITIVITY_MEANING};
 use crate::spec::{MethodKind, ResolvedMethod, ValidatedJob};
-use demefix_science::ensemble::{self, Accumulator, EnsembleError, ProgressObserver, StopReason};
+use demefix_science::ensemble::{
+    self, Accumulator, ChunkRecord, EnsembleError, ProgressObserver, StopReason,
+};
 use demefix_science::exact::{self, ExactError};
 use demefix_science::start::combine;
 use demefix_science::Start;
@@ -91,13 +93,31 @@ fn model_at(job: &ValidatedJob, s: f64) -> Result<Model, ComputeError> {
     Ok(job.model().with_selection(s)?)
 }
 
-/// Where a job's ensembles stand: one accumulator per `(s, start)` cell begun so far, in job
-/// order (the last one may be unfinished). Everything in it is an integer, so a job resumed
-/// from a checkpoint ends with results byte-identical to an uninterrupted run.
-#[derive(Debug, Clone, Default, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
+/// One committed step of a job's ensembles: what one chunk added to cell `cell` (the
+/// `(s, start)` pairs in job order). Storing steps, not whole accumulators, keeps every
+/// commit the size of one chunk, however long the run.
+#[derive(Debug, Clone, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
+pub struct ChunkStep {
+    /// Index of the cell, in job order.
+    pub cell: usize,
+    /// What the chunk added.
+    pub record: ChunkRecord,
+}
+
+/// Where a job's ensembles stand: the steps committed so far, in the order they were made.
+/// Replaying them rebuilds every cell's integer accumulator exactly, so a job resumed from a
+/// checkpoint ends with results byte-identical to an uninterrupted run.
+#[derive(Debug, Clone, Default, PartialEq, Eq)]
 pub struct EnsembleCheckpoint {
-    /// Accumulators of the cells begun, in the order the job lists them.
-    pub cells: Vec<Accumulator>,
+    /// The committed steps, oldest first.
+    pub steps: Vec<ChunkStep>,
+}
+
+impl EnsembleCheckpoint {
+    /// Replicates merged over all cells.
+    pub fn replicates(&self) -> u64 {
+        self.steps.iter().map(|step| step.record.replicates).sum()
+    }
 }
 
 /// Computes every result of `job`. Ensembles and the exact solver run on `pool`; the result
@@ -111,15 +131,15 @@ pub fn run(
     run_resumable(job, pool, observer, cancel, None, &mut |_| {})
 }
 
-/// [`run`], resuming the ensembles from `resume` and handing a checkpoint to `on_checkpoint`
-/// after every chunk (the caller commits it). Exact and approximation jobs never checkpoint.
+/// [`run`], resuming the ensembles from `resume` and handing each chunk's [`ChunkStep`] to
+/// `on_chunk` (the caller commits it). Exact and approximation jobs never checkpoint.
 pub fn run_resumable(
     job: &ValidatedJob,
     pool: &rayon::ThreadPool,
     observer: &dyn ProgressObserver,
     cancel: &AtomicBool,
     resume: Option<EnsembleCheckpoint>,
-    on_checkpoint: &mut dyn FnMut(&EnsembleCheckpoint),
+    on_chunk: &mut dyn FnMut(&ChunkStep),
 ) -> Result<Outcome, ComputeError> {
     let resume = resume.unwrap_or_default();
     match job.method() {
@@ -133,8 +153,7 @@ pub fn run_resumable(
             Err(ComputeError::Exact(e @ ExactError::NotConverged { .. }))
                 if job.spec().method.kind == MethodKind::Auto =>
             {
-                let mut outcome =
-                    run_ensembles(job, pool, observer, cancel, resume, on_checkpoint)?;
+                let mut outcome = run_ensembles(job, pool, observer, cancel, resume, on_chunk)?;
                 outcome.warnings.insert(
                     0,
                     format!("the exact method failed ({e}); method `auto` used ensembles instead"),
@@ -143,9 +162,7 @@ pub fn run_resumable(
             }
             Err(e) => Err(e),
         },
-        ResolvedMethod::Ensemble => {
-            run_ensembles(job, pool, observer, cancel, resume, on_checkpoint)
-        }
+        ResolvedMethod::Ensemble => run_ensembles(job, pool, observer, cancel, resume, on_chunk),
         ResolvedMethod::Approximation => {
             let rule = job.spec().dynamics.rule;
             let total = job.population().total();
@@ -250,13 +267,37 @@ fn link_rows(
     rows.into_iter().map(|(_, row)| row).collect()
 }
 
+/// The accumulator of cell `cell` rebuilt from its committed steps (`None` without any).
+fn replay(
+    model: &Model,
+    start: Start,
+    config: &ensemble::EnsembleConfig,
+    cell: usize,
+    checkpoint: &EnsembleCheckpoint,
+) -> Result<Option<Accumulator>, ComputeError> {
+    let mut steps = checkpoint
+        .steps
+        .iter()
+        .filter(|step| step.cell == cell)
+        .peekable();
+    if steps.peek().is_none() {
+        return Ok(None);
+    }
+    let mut acc = ensemble::EnsembleJob::new(model, start, config)?.accumulator();
+    for step in steps {
+        acc.apply(&step.record)
+            .map_err(|_| ComputeError::Ensemble(EnsembleError::ForeignCheckpoint))?;
+    }
+    Ok(Some(acc))
+}
+
 fn run_ensembles(
     job: &ValidatedJob,
     pool: &rayon::ThreadPool,
     observer: &dyn ProgressObserver,
     cancel: &AtomicBool,
-    mut checkpoint: EnsembleCheckpoint,
-    on_checkpoint: &mut dyn FnMut(&EnsembleCheckpoint),
+    resume: EnsembleCheckpoint,
+    on_chunk: &mut dyn FnMut(&ChunkStep),
 ) -> Result<Outcome, ComputeError> {
     let config = job.ensemble_config().ok_or(ComputeError::MissingSeed)?;
     let rule = job.spec().dynamics.rule;
@@ -280,7 +321,7 @@ fn run_ensembles(
                 base,
                 total: grand_total,
             };
-            let resume = checkpoint.cells.get(cell).cloned();
+            let resumed = replay(&model, start, &config, cell, &resume)?;
             let summary = ensemble::run_resumable(
                 &model,
                 start,
@@ -288,11 +329,12 @@ fn run_ensembles(
                 pool,
                 &progress,
                 cancel,
-                resume,
-                &mut |acc| {
-                    checkpoint.cells.truncate(cell);
-                    checkpoint.cells.push(acc.clone());
-                    on_checkpoint(&checkpoint);
+                resumed,
+                &mut |_, record| {
+                    on_chunk(&ChunkStep {
+                        cell,
+                        record: record.clone(),
+                    });
                 },
             )?;
             cell += 1;

@@ -4,8 +4,8 @@
 mod common;
 use common::model;
 use demefix_science::ensemble::{
-    run, run_resumable, Accumulator, EnsembleConfig, EnsembleSummary, NoProgress, StopReason,
-    EARLY_STOP_GRID,
+    run, run_resumable, Accumulator, ChunkRecord, EnsembleConfig, EnsembleJob, EnsembleSummary,
+    NoProgress, StopReason, EARLY_STOP_GRID,
 };
 use demefix_science::{Model, Rule, Scope, Start};
 use std::sync::atomic::{AtomicBool, Ordering};
@@ -83,6 +83,7 @@ fn a_resumed_ensemble_equals_an_uninterrupted_one() {
     // first half: commit a checkpoint after every chunk, stop once past half way
     let cancel = AtomicBool::new(false);
     let mut checkpoint = String::new();
+    let mut records = Vec::new();
     let partial = run_resumable(
         &m,
         Start::AtBirth,
@@ -91,8 +92,9 @@ fn a_resumed_ensemble_equals_an_uninterrupted_one() {
         &NoProgress,
         &cancel,
         None,
-        &mut |acc: &Accumulator| {
+        &mut |acc: &Accumulator, record: &ChunkRecord| {
             checkpoint = serde_json::to_string(acc).unwrap();
+            records.push(serde_json::to_string(record).unwrap());
             if acc.next_replicate() >= 2500 {
                 cancel.store(true, Ordering::Relaxed);
             }
@@ -102,6 +104,20 @@ fn a_resumed_ensemble_equals_an_uninterrupted_one() {
     assert_eq!(partial.stop, StopReason::Cancelled);
     assert_eq!(partial.replicates, 2560); // whole chunks only
     let acc: Accumulator = serde_json::from_str(&checkpoint).unwrap();
+    // the chunk records replayed in order rebuild the same accumulator; out of order they
+    // are refused
+    let job = EnsembleJob::new(&m, Start::AtBirth, &config(5000, 64, None)).unwrap();
+    let records: Vec<ChunkRecord> = records
+        .iter()
+        .map(|text| serde_json::from_str(text).unwrap())
+        .collect();
+    let mut replayed = job.accumulator();
+    assert!(replayed.apply(&records[1]).is_err());
+    for record in &records {
+        replayed.apply(record).unwrap();
+    }
+    assert_eq!(replayed, acc);
+    assert!(replayed.apply(&records[0]).is_err());
     // resume with another chunk size and thread count
     let resumed = run_resumable(
         &m,
@@ -111,7 +127,7 @@ fn a_resumed_ensemble_equals_an_uninterrupted_one() {
         &NoProgress,
         &AtomicBool::new(false),
         Some(acc.clone()),
-        &mut |_| {},
+        &mut |_, _| {},
     )
     .unwrap();
     assert_eq!(format!("{resumed:?}"), format!("{whole:?}"));
@@ -128,7 +144,7 @@ fn a_resumed_ensemble_equals_an_uninterrupted_one() {
         &NoProgress,
         &AtomicBool::new(false),
         Some(acc),
-        &mut |_| {},
+        &mut |_, _| {},
     );
     assert!(err.is_err());
 }

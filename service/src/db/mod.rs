@@ -5,7 +5,8 @@
 //! `foreign_keys=ON`), the split into one writer connection and a pool of read-only readers,
 //! the migrations (`migrations/` at the package root, applied on open), and every statement:
 //! submission with its idempotency check and result reuse, the content-addressed matrices
-//! (stored once per canonical hash, never changed), the queue (claim, heartbeat, checkpoint,
+//! (stored once per canonical hash, never changed), the queue (claim, heartbeat, the
+//! append-only log of ensemble chunks,
 //! completion fenced by the lease token, requeue on shutdown, rescue of expired leases by
 //! the claim itself), cancellation, and the read side (one run, a page of runs, a matrix).
 //!
@@ -381,6 +382,10 @@ impl Store {
                 .bind(id)
                 .execute(&mut *tx)
                 .await?;
+                sqlx::query("DELETE FROM run_chunks WHERE run_id = ?")
+                    .bind(id)
+                    .execute(&mut *tx)
+                    .await?;
                 false
             }
             "running" => {
@@ -418,8 +423,7 @@ impl Store {
                          WHERE status = 'queued'
                             OR (status = 'running' AND lease_expires_ms < ?4)
                          ORDER BY id LIMIT 1)
-             RETURNING id, spec, request_sha256, warnings, checkpoint, attempts,
-                       cancel_requested",
+             RETURNING id, spec, request_sha256, warnings, attempts, cancel_requested",
         )
         .bind(token)
         .bind(now.saturating_add(millis(lease)))
@@ -427,7 +431,76 @@ impl Store {
         .bind(now)
         .fetch_optional(&self.writer)
         .await?;
-        Ok(row.map(ClaimRow::into_claim))
+        let Some(row) = row else {
+            return Ok(None);
+        };
+        let steps: Vec<String> =
+            sqlx::query_scalar("SELECT step FROM run_chunks WHERE run_id = ? ORDER BY seq")
+                .bind(row.id())
+                .fetch_all(&self.writer)
+                .await?;
+        Ok(Some(row.into_claim(steps)))
+    }
+
+    /// Appends ensemble chunk `seq` of run `id` (held with `token`) to its checkpoint log,
+    /// extending the lease and recording progress in the same transaction. `None` when the
+    /// lease is lost (nothing is written); otherwise whether cancellation was requested.
+    pub async fn commit_chunk(
+        &self,
+        id: &str,
+        token: &str,
+        lease: Duration,
+        done: u64,
+        seq: u64,
+        step: &str,
+    ) -> Result<Option<bool>, DbError> {
+        let mut tx = self.writer.begin_with("BEGIN IMMEDIATE").await?;
+        let cancel: Option<i64> = sqlx::query_scalar(
+            "UPDATE runs
+             SET lease_expires_ms = ?1, heartbeat_at = ?2, progress_done = ?3
+             WHERE id = ?4 AND lease_token = ?5 AND status = 'running'
+             RETURNING cancel_requested",
+        )
+        .bind(now_ms().saturating_add(millis(lease)))
+        .bind(now_text())
+        .bind(done as i64)
+        .bind(id)
+        .bind(token)
+        .fetch_optional(&mut *tx)
+        .await?;
+        let Some(cancel) = cancel else {
+            tx.rollback().await?;
+            return Ok(None);
+        };
+        sqlx::query("INSERT INTO run_chunks (run_id, seq, step) VALUES (?, ?, ?)")
+            .bind(id)
+            .bind(i64::try_from(seq).unwrap_or(i64::MAX))
+            .bind(step)
+            .execute(&mut *tx)
+            .await?;
+        tx.commit().await?;
+        Ok(Some(cancel != 0))
+    }
+
+    /// Empties the checkpoint log of run `id` if `token` still holds its lease (the run's
+    /// ensembles start afresh). Returns whether the lease still held.
+    pub async fn discard_chunks(&self, id: &str, token: &str) -> Result<bool, DbError> {
+        let mut tx = self.writer.begin_with("BEGIN IMMEDIATE").await?;
+        let held: Option<i64> = sqlx::query_scalar(
+            "SELECT 1 FROM runs WHERE id = ? AND lease_token = ? AND status = 'running'",
+        )
+        .bind(id)
+        .bind(token)
+        .fetch_optional(&mut *tx)
+        .await?;
+        if held.is_some() {
+            sqlx::query("DELETE FROM run_chunks WHERE run_id = ?")
+                .bind(id)
+                .execute(&mut *tx)
+                .await?;
+        }
+        tx.commit().await?;
+        Ok(held.is_some())
     }
 
     /// Extends the lease of run `id` held with `token` and records progress. `None` when
@@ -439,19 +512,16 @@ impl Store {
         token: &str,
         lease: Duration,
         done: u64,
-        checkpoint: Option<&str>,
     ) -> Result<Option<bool>, DbError> {
         let cancel: Option<i64> = sqlx::query_scalar(
             "UPDATE runs
-             SET lease_expires_ms = ?1, heartbeat_at = ?2, progress_done = ?3,
-                 checkpoint = COALESCE(?4, checkpoint)
-             WHERE id = ?5 AND lease_token = ?6 AND status = 'running'
+             SET lease_expires_ms = ?1, heartbeat_at = ?2, progress_done = ?3
+             WHERE id = ?4 AND lease_token = ?5 AND status = 'running'
              RETURNING cancel_requested",
         )
         .bind(now_ms().saturating_add(millis(lease)))
         .bind(now_text())
         .bind(done as i64)
-        .bind(checkpoint)
         .bind(id)
         .bind(token)
         .fetch_optional(&self.writer)
@@ -459,10 +529,11 @@ impl Store {
         Ok(cancel.map(|c| c != 0))
     }
 
-    /// Ends run `id` as `finish` says, if `token` still holds its lease (fencing). Returns
-    /// whether the completion was accepted.
+    /// Ends run `id` as `finish` says, if `token` still holds its lease (fencing), and drops
+    /// its checkpoint log. Returns whether the completion was accepted.
     pub async fn finish(&self, id: &str, token: &str, finish: &Finish) -> Result<bool, DbError> {
         let now = now_text();
+        let mut tx = self.writer.begin_with("BEGIN IMMEDIATE").await?;
         let result = match finish {
             Finish::Succeeded {
                 provenance,
@@ -485,7 +556,7 @@ impl Store {
                 .bind(id)
                 .bind(token)
                 .bind(sensitivity)
-                .execute(&self.writer)
+                .execute(&mut *tx)
                 .await?
             }
             Finish::Failed { error } => {
@@ -499,7 +570,7 @@ impl Store {
                 .bind(&now)
                 .bind(id)
                 .bind(token)
-                .execute(&self.writer)
+                .execute(&mut *tx)
                 .await?
             }
             Finish::Cancelled => {
@@ -512,14 +583,22 @@ impl Store {
                 .bind(&now)
                 .bind(id)
                 .bind(token)
-                .execute(&self.writer)
+                .execute(&mut *tx)
                 .await?
             }
         };
-        Ok(result.rows_affected() == 1)
+        let accepted = result.rows_affected() == 1;
+        if accepted {
+            sqlx::query("DELETE FROM run_chunks WHERE run_id = ?")
+                .bind(id)
+                .execute(&mut *tx)
+                .await?;
+        }
+        tx.commit().await?;
+        Ok(accepted)
     }
 
-    /// Puts run `id` back in the queue (shutdown), keeping its checkpoint, if `token` still
+    /// Puts run `id` back in the queue (shutdown), keeping its checkpoint log, if `token` still
     /// holds its lease.
     pub async fn requeue(&self, id: &str, token: &str) -> Result<bool, DbError> {
         let result = sqlx::query(

@@ -105,7 +105,6 @@ pub(super) struct ClaimRow {
     spec: String,
     request_sha256: String,
     warnings: String,
-    checkpoint: Option<String>,
     attempts: i64,
     cancel_requested: i64,
 }
@@ -121,8 +120,8 @@ pub struct Claim {
     pub request_sha256: String,
     /// Validation warnings recorded at submission (or unreadable-warnings text on error).
     pub warnings: Result<Vec<String>, String>,
-    /// The last committed checkpoint (JSON text).
-    pub checkpoint: Option<String>,
+    /// The committed checkpoint log, oldest first: one JSON `compute::ChunkStep` per chunk.
+    pub checkpoint: Vec<String>,
     /// This claim's number (1 for the first).
     pub attempt: u64,
     /// Cancellation was requested before the claim.
@@ -130,13 +129,17 @@ pub struct Claim {
 }
 
 impl ClaimRow {
-    pub(super) fn into_claim(self) -> Claim {
+    pub(super) fn id(&self) -> &str {
+        &self.id
+    }
+
+    pub(super) fn into_claim(self, checkpoint: Vec<String>) -> Claim {
         Claim {
             warnings: warnings(&self.id, &self.warnings).map_err(|e| e.to_string()),
             id: self.id,
             spec: self.spec,
             request_sha256: self.request_sha256,
-            checkpoint: self.checkpoint,
+            checkpoint,
             attempt: u64::try_from(self.attempts).unwrap_or(0),
             cancel_requested: self.cancel_requested != 0,
         }

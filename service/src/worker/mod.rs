@@ -9,17 +9,18 @@
 //! token still holds the lease (fencing). On shutdown a running computation is stopped at its
 //! next chunk boundary and the run goes back to the queue, neither lost nor failed.
 //!
-//! Ensembles commit a checkpoint (every cell's integer accumulator, `compute::EnsembleCheckpoint`)
-//! after every chunk, guarded by the lease token; a run interrupted by a crash or a shutdown
-//! resumes from its last committed chunk when it is claimed again and ends byte-identical to
-//! an uninterrupted run.
+//! Ensembles append one checkpoint step per chunk (`compute::ChunkStep`: what the chunk added
+//! to its cell's integer accumulator) to the run's log, guarded by the lease token; a run
+//! interrupted by a crash or a shutdown replays its log when it is claimed again, resumes
+//! after its last committed chunk and ends byte-identical to an uninterrupted run. Each
+//! commit carries one chunk's data, however long the run.
 //!
 //! Metrics: `demefix_runs_finished_total{status}` counts accepted completions;
 //! `demefix_ensemble_replicates_total` counts the ensemble replicates of every committed
 //! chunk (Prometheus `rate()` of it is the replicates per second), and
 //! `demefix_ensemble_chunk_replicates_per_second` is the rate of the most recent chunk.
 
-use crate::compute::{self, ComputeError, EnsembleCheckpoint};
+use crate::compute::{self, ChunkStep, ComputeError, EnsembleCheckpoint};
 use crate::config::Config;
 use crate::db::{Claim, Store};
 use crate::domain::Finish;
@@ -153,15 +154,13 @@ impl Workers {
         let threads = pool.current_num_threads();
         let span = tracing::Span::current();
         let compute_flags = flags.clone();
-        let resume = claim.checkpoint.as_deref().and_then(|text| {
-            serde_json::from_str::<EnsembleCheckpoint>(text)
-                .map_err(|e| warn!(error = %e, "unreadable checkpoint ignored; starting afresh"))
-                .ok()
-        });
+        let resume = read_checkpoint(&claim.checkpoint);
+        let unreadable = resume.is_none() && !claim.checkpoint.is_empty();
         if let Some(cp) = &resume {
             info!(
-                cells = cp.cells.len(),
-                "resuming from the last committed chunk"
+                chunks = cp.steps.len(),
+                replicates = cp.replicates(),
+                "resuming after the last committed chunk"
             );
         }
         let committer = Committer {
@@ -171,21 +170,31 @@ impl Workers {
             token: token.clone(),
             lease: self.config.lease,
             flags: flags.clone(),
-            committed: Cell::new(resume.as_ref().map_or(0, replicates_in)),
+            next_seq: Cell::new(if unreadable {
+                0
+            } else {
+                claim.checkpoint.len() as u64
+            }),
             last_commit: Cell::new(Instant::now()),
         };
+        if unreadable {
+            warn!("unreadable checkpoint log discarded; starting afresh");
+            if let Err(e) = self.store.discard_chunks(&claim.id, &token).await {
+                warn!(error = %e, "the old checkpoint log could not be emptied");
+            }
+        }
         let computed = tokio::task::spawn_blocking(move || {
             let _entered = span.enter();
             let observer = Observer(&compute_flags);
             let cancel = &compute_flags.cancel;
-            let mut commit = |cp: &EnsembleCheckpoint| committer.commit(cp);
+            let mut commit = |step: &ChunkStep| committer.commit(step);
             let had_checkpoint = resume.is_some();
             let mut outcome =
                 compute::run_resumable(&job, &pool, &observer, cancel, resume, &mut commit);
             if had_checkpoint && matches!(outcome, Err(ComputeError::Ensemble(_))) {
                 warn!("the checkpoint does not belong to this job's settings; starting afresh");
                 committer.restart();
-                let mut commit = |cp: &EnsembleCheckpoint| committer.commit(cp);
+                let mut commit = |step: &ChunkStep| committer.commit(step);
                 outcome = compute::run_resumable(&job, &pool, &observer, cancel, None, &mut commit);
             }
             (job, outcome)
@@ -229,8 +238,8 @@ impl Workers {
                     Finish::Cancelled
                 } else {
                     match self.store.requeue(&claim.id, &token).await {
-                        Ok(true) => info!("shutting down: run put back in the queue"),
-                        Ok(false) => warn!("shutting down: the lease was already lost"),
+                        Ok(true) => info!("stopped: run put back in the queue to resume later"),
+                        Ok(false) => warn!("stopped: the lease was already lost"),
                         Err(e) => error!(error = %e, "cannot put the run back in the queue"),
                     }
                     return;
@@ -263,16 +272,25 @@ struct RunFlags {
     done: AtomicU64,
 }
 
-/// Replicates merged into `checkpoint`, over all its cells.
-fn replicates_in(checkpoint: &EnsembleCheckpoint) -> u64 {
-    checkpoint
-        .cells
+/// The checkpoint in a claim's log, or `None` when it is empty or a step cannot be read.
+fn read_checkpoint(log: &[String]) -> Option<EnsembleCheckpoint> {
+    if log.is_empty() {
+        return None;
+    }
+    let steps: Result<Vec<ChunkStep>, _> = log
         .iter()
-        .map(|cell| cell.next_replicate())
-        .sum()
+        .map(|text| serde_json::from_str::<ChunkStep>(text))
+        .collect();
+    match steps {
+        Ok(steps) => Some(EnsembleCheckpoint { steps }),
+        Err(e) => {
+            warn!(error = %e, "a checkpoint step cannot be read");
+            None
+        }
+    }
 }
 
-/// Commits ensemble checkpoints from the computing thread, through the lease token.
+/// Commits ensemble chunk steps from the computing thread, through the lease token.
 struct Committer {
     runtime: tokio::runtime::Handle,
     store: Store,
@@ -280,31 +298,34 @@ struct Committer {
     token: String,
     lease: Duration,
     flags: Arc<RunFlags>,
-    /// Replicates in the last checkpoint committed (or resumed from).
-    committed: Cell<u64>,
-    /// When the last checkpoint was committed (or the computation started).
+    /// Sequence number of the next step in the run's log.
+    next_seq: Cell<u64>,
+    /// When the last step was committed (or the computation started).
     last_commit: Cell<Instant>,
 }
 
 impl Committer {
-    /// Writes `checkpoint` (and the progress) if this worker still holds the lease; raises
-    /// the cancellation flag when the lease is lost or a client asked to cancel.
-    fn commit(&self, checkpoint: &EnsembleCheckpoint) {
-        let text = match serde_json::to_string(checkpoint) {
+    /// Appends `step` to the run's log (with the progress) if this worker still holds the
+    /// lease; raises the cancellation flag when the lease is lost or a client asked to cancel.
+    fn commit(&self, step: &ChunkStep) {
+        let text = match serde_json::to_string(step) {
             Ok(text) => text,
-            Err(e) => return error!(error = %e, "cannot serialise the checkpoint"),
+            Err(e) => return error!(error = %e, "cannot serialise the checkpoint step"),
         };
         let done = self.flags.done.load(Ordering::Relaxed);
-        let written = self.runtime.block_on(self.store.heartbeat(
+        let seq = self.next_seq.get();
+        let written = self.runtime.block_on(self.store.commit_chunk(
             &self.id,
             &self.token,
             self.lease,
             done,
-            Some(&text),
+            seq,
+            &text,
         ));
         match written {
             Ok(Some(cancel_requested)) => {
-                self.count_committed(checkpoint);
+                self.next_seq.set(seq + 1);
+                self.count_committed(step.record.replicates);
                 if cancel_requested {
                     self.flags.user_cancel.store(true, Ordering::SeqCst);
                     self.flags.cancel.store(true, Ordering::SeqCst);
@@ -314,14 +335,17 @@ impl Committer {
                 self.flags.lease_lost.store(true, Ordering::SeqCst);
                 self.flags.cancel.store(true, Ordering::SeqCst);
             }
-            Err(e) => warn!(error = %e, "checkpoint not committed; the next chunk will try again"),
+            // A step that is not committed cannot be skipped (the log must replay in order):
+            // stop here; the run goes back to the queue and resumes after the last step.
+            Err(e) => {
+                error!(error = %e, "checkpoint step not committed; stopping the run to resume it");
+                self.flags.cancel.store(true, Ordering::SeqCst);
+            }
         }
     }
 
-    /// Adds the replicates `checkpoint` committed beyond the previous one to the metrics.
-    fn count_committed(&self, checkpoint: &EnsembleCheckpoint) {
-        let now_in = replicates_in(checkpoint);
-        let new = now_in.saturating_sub(self.committed.replace(now_in));
+    /// Adds the `new` replicates of a committed chunk to the metrics.
+    fn count_committed(&self, new: u64) {
         let seconds = self
             .last_commit
             .replace(Instant::now())
@@ -337,9 +361,15 @@ impl Committer {
         }
     }
 
-    /// Forgets the checkpoint resumed from (the computation starts afresh).
+    /// Empties the run's log (the computation starts afresh).
     fn restart(&self) {
-        self.committed.set(0);
+        if let Err(e) = self
+            .runtime
+            .block_on(self.store.discard_chunks(&self.id, &self.token))
+        {
+            warn!(error = %e, "the old checkpoint log could not be emptied");
+        }
+        self.next_seq.set(0);
         self.last_commit.set(Instant::now());
     }
 }
@@ -366,11 +396,7 @@ async fn heartbeat(w: Workers, id: String, token: String, flags: Arc<RunFlags>, 
             _ = shutdown.changed(), if !flags.cancel.load(Ordering::SeqCst) => continue,
         }
         let done = flags.done.load(Ordering::Relaxed);
-        match w
-            .store
-            .heartbeat(&id, &token, w.config.lease, done, None)
-            .await
-        {
+        match w.store.heartbeat(&id, &token, w.config.lease, done).await {
             Ok(Some(true)) => {
                 flags.user_cancel.store(true, Ordering::SeqCst);
                 flags.cancel.store(true, Ordering::SeqCst);

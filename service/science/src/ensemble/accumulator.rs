@@ -4,6 +4,11 @@
 //! Everything inside is an integer, so merging is exact and the final summary (means and
 //! quantiles computed only in [`Accumulator::finish`]) does not depend on how the replicates
 //! were split into chunks or threads.
+//!
+//! A checkpoint is the ordered list of [`ChunkRecord`]s: what each merged chunk added.
+//! Storing one record per chunk keeps every commit as small as one chunk's own times (the
+//! accumulator itself grows with the whole run), and replaying the records in order on a
+//! fresh accumulator ([`Accumulator::apply`]) rebuilds it exactly.
 
 use super::chain::{End, ReplicateOutcome};
 use super::{EnsembleSummary, StopReason, TimeQuantiles};
@@ -52,6 +57,51 @@ pub struct Accumulator {
     /// `arrivals[deme * fractions + f]`: arrival times over fixed replicates.
     pub(crate) arrivals: Vec<Vec<u64>>,
     pub(crate) target_reached: bool,
+}
+
+/// What one merged chunk added to an [`Accumulator`]: the count and tick-sum increments and
+/// the new times, in replicate order. Only the times the summary uses are kept (arrival times
+/// of fixing replicates only), so a record holds a few integers per replicate.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+pub struct ChunkRecord {
+    /// The fingerprint of the accumulator that made it (a record only replays into its own
+    /// ensemble).
+    fingerprint: [u8; 32],
+    /// Index of the first replicate merged.
+    pub start: u64,
+    /// Replicates merged (those of the chunk kept before any early stop).
+    pub replicates: u64,
+    fixed: u64,
+    lost: u64,
+    unresolved: u64,
+    #[serde(with = "decimal")]
+    absorption_ticks: u128,
+    #[serde(with = "decimal")]
+    fixation_ticks: u128,
+    #[serde(with = "decimal")]
+    state_changes: u128,
+    absorption_times: Vec<u64>,
+    fixation_times: Vec<u64>,
+    /// `arrivals[deme * fractions + f]`: the new arrival times.
+    arrivals: Vec<Vec<u64>>,
+    target_reached: bool,
+}
+
+/// Why a [`ChunkRecord`] cannot be applied.
+#[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]
+pub enum ReplayError {
+    /// The record does not start where the accumulator stands.
+    #[error("chunk record starts at replicate {record} but the accumulator is at {next}")]
+    OutOfOrder {
+        /// Where the record starts.
+        record: u64,
+        /// Where the accumulator stands.
+        next: u64,
+    },
+    /// The record was made by another ensemble (cell, seed or result-changing setting) or is
+    /// inconsistent.
+    #[error("chunk record does not fit this ensemble")]
+    Mismatch,
 }
 
 impl Accumulator {
@@ -159,6 +209,97 @@ impl Accumulator {
             }
         }
         self.target_reached
+    }
+
+    /// [`Self::merge`], returning what the chunk added (to be stored as a checkpoint step).
+    ///
+    /// # Panics
+    /// If the chunk does not start at the next replicate.
+    pub fn merge_recorded(
+        &mut self,
+        chunk: ChunkOutcome,
+        target_half_width: Option<f64>,
+    ) -> ChunkRecord {
+        let before = self.clone_counts();
+        let marks = (
+            self.absorption_times.len(),
+            self.fixation_times.len(),
+            self.arrivals.iter().map(Vec::len).collect::<Vec<_>>(),
+        );
+        self.merge(chunk, target_half_width);
+        ChunkRecord {
+            fingerprint: self.fingerprint,
+            start: before.next,
+            replicates: self.next - before.next,
+            fixed: self.fixed - before.fixed,
+            lost: self.lost - before.lost,
+            unresolved: self.unresolved - before.unresolved,
+            absorption_ticks: self.absorption_ticks - before.absorption_ticks,
+            fixation_ticks: self.fixation_ticks - before.fixation_ticks,
+            state_changes: self.state_changes - before.state_changes,
+            absorption_times: self.absorption_times[marks.0..].to_vec(),
+            fixation_times: self.fixation_times[marks.1..].to_vec(),
+            arrivals: self
+                .arrivals
+                .iter()
+                .zip(&marks.2)
+                .map(|(list, &from)| list[from..].to_vec())
+                .collect(),
+            target_reached: self.target_reached,
+        }
+    }
+
+    /// Adds a stored [`ChunkRecord`]; replaying a run's records in order on a fresh
+    /// accumulator gives exactly the accumulator that made them. Nothing changes on error.
+    pub fn apply(&mut self, record: &ChunkRecord) -> Result<(), ReplayError> {
+        if record.start != self.next {
+            return Err(ReplayError::OutOfOrder {
+                record: record.start,
+                next: self.next,
+            });
+        }
+        let consistent = record.fingerprint == self.fingerprint
+            && record.arrivals.len() == self.arrivals.len()
+            && record.fixed + record.lost + record.unresolved == record.replicates
+            && record.fixation_times.len() as u64 == record.fixed
+            && record.absorption_times.len() as u64 == record.fixed + record.lost
+            && record
+                .arrivals
+                .iter()
+                .all(|list| list.len() as u64 == record.fixed)
+            && self
+                .next
+                .checked_add(record.replicates)
+                .is_some_and(|n| n <= self.requested);
+        if !consistent {
+            return Err(ReplayError::Mismatch);
+        }
+        self.next += record.replicates;
+        self.fixed += record.fixed;
+        self.lost += record.lost;
+        self.unresolved += record.unresolved;
+        self.absorption_ticks += record.absorption_ticks;
+        self.fixation_ticks += record.fixation_ticks;
+        self.state_changes += record.state_changes;
+        self.absorption_times
+            .extend_from_slice(&record.absorption_times);
+        self.fixation_times
+            .extend_from_slice(&record.fixation_times);
+        for (list, new) in self.arrivals.iter_mut().zip(&record.arrivals) {
+            list.extend_from_slice(new);
+        }
+        self.target_reached = record.target_reached;
+        Ok(())
+    }
+
+    /// The integer counters alone (the time lists left empty).
+    fn clone_counts(&self) -> Self {
+        Self {
+            absorption_times: Vec::new(),
+            fixation_times: Vec::new(),
+            arrivals: Vec::new(),
+            ..*self
+        }
     }
 
     /// The summary of the replicates merged so far.

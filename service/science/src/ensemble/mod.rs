@@ -24,7 +24,7 @@ pub mod chain;
 pub mod stream;
 mod tree;
 
-pub use accumulator::{Accumulator, ChunkOutcome, EARLY_STOP_GRID};
+pub use accumulator::{Accumulator, ChunkOutcome, ChunkRecord, ReplayError, EARLY_STOP_GRID};
 pub use chain::{End, ReplicateOutcome};
 use chain::{Replicate, Tables};
 
@@ -289,14 +289,15 @@ pub fn run(
         observer,
         cancel,
         None,
-        &mut |_| {},
+        &mut |_, _| {},
     )
     .unwrap_or_else(|e| panic!("ensemble::run: {e}"))
 }
 
 /// Runs (or resumes from `resume`) the ensemble chunk by chunk: before each chunk it checks
 /// `cancel`; after each chunk it merges the outcomes in replicate order, calls `observer`
-/// and hands the accumulator to `on_chunk` (to be committed as a checkpoint).
+/// and hands the accumulator and what the chunk added ([`ChunkRecord`], the step to commit
+/// as a checkpoint) to `on_chunk`.
 #[allow(clippy::too_many_arguments)]
 pub fn run_resumable(
     model: &Model,
@@ -306,7 +307,7 @@ pub fn run_resumable(
     observer: &dyn ProgressObserver,
     cancel: &AtomicBool,
     resume: Option<Accumulator>,
-    on_chunk: &mut dyn FnMut(&Accumulator),
+    on_chunk: &mut dyn FnMut(&Accumulator, &ChunkRecord),
 ) -> Result<EnsembleSummary, EnsembleError> {
     let job = EnsembleJob::new(model, start, config)?;
     let mut acc = match resume {
@@ -321,9 +322,9 @@ pub fn run_resumable(
         let a = acc.next_replicate();
         let b = a.saturating_add(chunk).min(config.replicates);
         let outcome = job.run_chunk(a..b, pool);
-        acc.merge(outcome, config.target_half_width);
+        let record = acc.merge_recorded(outcome, config.target_half_width);
         observer.on_progress(acc.next_replicate(), config.replicates);
-        on_chunk(&acc);
+        on_chunk(&acc, &record);
     }
     Ok(acc.finish())
 }

@@ -1,7 +1,7 @@
 //! Benchmarks of the ensemble method (`cargo bench -p demefix-science --bench ensemble`).
 //! Short: each iteration runs a small chunk of replicates on one thread.
 
-use demefix_science::ensemble::{EnsembleConfig, EnsembleJob};
+use demefix_science::ensemble::{EnsembleConfig, EnsembleJob, Scheme};
 use demefix_science::{Model, Population, Rule, Scope, Start, StochasticMatrix};
 
 fn main() {
@@ -41,6 +41,7 @@ fn run_chunk(model: &Model, replicates: u64) -> u64 {
         target_half_width: None,
         max_generations: 1_000_000,
         arrival_fractions: vec![0.5],
+        scheme: Scheme::Auto,
     };
     let job = EnsembleJob::new(model, Start::Uniform, &config).unwrap();
     let pool = rayon::ThreadPoolBuilder::new()

@@ -3,7 +3,7 @@
 //!
 //! `cargo run --release -p demefix-science --example ensemble_throughput`
 
-use demefix_science::ensemble::{EnsembleConfig, EnsembleJob};
+use demefix_science::ensemble::{EnsembleConfig, EnsembleJob, Scheme};
 use demefix_science::{Model, Population, Rule, Scope, Start, StochasticMatrix};
 use std::time::Instant;
 
@@ -80,6 +80,7 @@ fn measure(model: &Model, replicates: u64, threads: usize) -> (u128, f64, f64) {
         target_half_width: None,
         max_generations: u64::MAX / (1 << 24),
         arrival_fractions: vec![0.5, 1.0],
+        scheme: Scheme::Auto,
     };
     let job = EnsembleJob::new(model, Start::Uniform, &config).expect("valid job");
     let pool = pool(threads);

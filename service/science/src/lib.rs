@@ -23,6 +23,7 @@ pub mod start;
 pub mod stats;
 pub mod weak;
 pub mod well_mixed;
+pub mod whatif;
 
 pub use migration::{MatrixIssue, MigrationInput, Orientation, SelfFlows, StochasticMatrix};
 pub use model::{Model, ModelError, Rule, Scope};
@@ -31,4 +32,4 @@ pub use start::Start;
 
 /// Version of the numerical methods. Bump whenever any numeric output for a fixed input,
 /// seed and version could change (a new sampling algorithm, a different solver tolerance).
-pub const METHOD_VERSION: &str = "0.2.0";
+pub const METHOD_VERSION: &str = "0.3.0";

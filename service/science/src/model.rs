@@ -140,6 +140,25 @@ impl Model {
         })
     }
 
+    /// The same chain (sizes, rule, scope, fitness bit for bit) with another kernel of the
+    /// same dimension, e.g. a what-if scenario's.
+    pub fn with_kernel(&self, kernel: StochasticMatrix) -> Result<Self, ModelError> {
+        if kernel.dim() != self.demes() {
+            return Err(ModelError::Matrix(vec![MatrixIssue::RowCount {
+                rows: kernel.dim(),
+                expected: self.demes(),
+            }]));
+        }
+        Ok(Self {
+            sizes: self.sizes.clone(),
+            total: self.total,
+            kernel,
+            rule: self.rule,
+            scope: self.scope,
+            fitness: self.fitness,
+        })
+    }
+
     /// Deme sizes.
     pub fn sizes(&self) -> &[u64] {
         &self.sizes

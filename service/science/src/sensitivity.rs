@@ -9,6 +9,9 @@
 //! probability from the off-diagonal entry `K_ij` to the same row's retention `K_ii`, so the
 //! row stays stochastic, which is the directional derivative `∂f/∂K_ij − ∂f/∂K_ii`
 //! (references.md §7.1; Caswell 2013, Linear Algebra Appl. 438:1727-1745).
+//!
+//! For a kernel derived from raw flows, [`flow_effects`] carries a link effect through the
+//! normalisation of `migration::resolve` to the effect of one more unit of the raw flow.
 
 use crate::migration::StochasticMatrix;
 use crate::model::Rule;
@@ -124,4 +127,57 @@ pub fn rank_by_effect(mut links: Vec<LinkEffect>) -> Vec<LinkEffect> {
             .then((a.row, a.col).cmp(&(b.row, b.col)))
     });
     links
+}
+
+/// The effect of one more unit of the raw flow behind each link, for a kernel derived from a
+/// flows matrix `flows` (`C`, row = from, column = to) as `migration::resolve` derives it,
+/// given `links`: every link of that kernel, as [`KernelPartials::link_effects`] returns them
+/// for `rule`. Returns `∂f/∂C[from][to]` per link, in the order of `links`.
+///
+/// Row `i` of the kernel comes from the weights `w_il = C[from][to]` of its links (`C[i][l]`
+/// for birth-death, `C[l][i]` for death-birth and Wright-Fisher). With
+/// `E_il = ∂f/∂K_il − ∂f/∂K_ii` (the link effects):
+///
+/// * `retention = None` (`self_flows: keep`), `K_il = w_il / S_i`, `S_i = sum_l w_il`:
+///   `∂f/∂w_ij = (E_ij − sum_{l≠i} K_il E_il) / S_i`;
+/// * `retention = Some(p)`, `K_ii = p`, `K_il = (1 − p) w_il / O_i`, `O_i = sum_{l≠i} w_il`:
+///   `∂f/∂w_ij = (1 − p) / O_i · (E_ij − sum_{l≠i} K_il E_il / (1 − p))`.
+///
+/// Both follow from `∂f/∂w_ij = sum_l ∂f/∂K_il ∂K_il/∂w_ij` and `sum_l K_il = 1` (derived
+/// here). A diagonal flow is not a link and has no entry.
+pub fn flow_effects(
+    links: &[LinkEffect],
+    kernel: &StochasticMatrix,
+    flows: &[Vec<f64>],
+    retention: Option<f64>,
+    rule: Rule,
+) -> Vec<f64> {
+    let m = kernel.dim();
+    let weight = |i: usize, l: usize| match rule {
+        Rule::BirthDeath => flows[i][l],
+        Rule::DeathBirth | Rule::WrightFisher => flows[l][i],
+    };
+    let moving = retention.map_or(1.0, |p| 1.0 - p);
+    let denominator: Vec<f64> = (0..m)
+        .map(|i| {
+            (0..m)
+                .filter(|&l| retention.is_none() || l != i)
+                .map(|l| weight(i, l))
+                .sum()
+        })
+        .collect();
+    let mut mean_effect = vec![0.0; m];
+    for link in links {
+        mean_effect[link.row] += kernel.get(link.row, link.col) * link.derivative;
+    }
+    links
+        .iter()
+        .map(|link| {
+            let i = link.row;
+            if moving <= 0.0 || denominator[i] <= 0.0 {
+                return 0.0;
+            }
+            moving / denominator[i] * (link.derivative - mean_effect[i] / moving)
+        })
+        .collect()
 }

@@ -5,7 +5,7 @@
 mod common;
 use common::model;
 use demefix_science::approx::{branching, strong_migration};
-use demefix_science::ensemble::{End, EnsembleConfig, EnsembleJob};
+use demefix_science::ensemble::{End, EnsembleConfig, EnsembleJob, Scheme};
 use demefix_science::exact::{self, ExactConfig};
 use demefix_science::sensitivity::KernelPartials;
 use demefix_science::{Model, Population, Rule, Scope, Start, StochasticMatrix};
@@ -330,6 +330,7 @@ fn ensemble(m: &Model, deme: usize, seed: u64, replicates: u64) -> (f64, f64) {
         target_half_width: None,
         max_generations: 1_000_000,
         arrival_fractions: vec![],
+        scheme: Scheme::Auto,
     };
     let job = EnsembleJob::new(m, Start::Deme(deme), &config).unwrap();
     let out = job.run_chunk(0..replicates, &pool).replicates;

@@ -5,7 +5,7 @@ mod common;
 use common::model;
 use demefix_science::ensemble::{
     run, run_resumable, Accumulator, ChunkRecord, EnsembleConfig, EnsembleJob, EnsembleSummary,
-    NoProgress, StopReason, EARLY_STOP_GRID,
+    NoProgress, Scheme, StopReason, EARLY_STOP_GRID,
 };
 use demefix_science::{Model, Rule, Scope, Start};
 use std::sync::atomic::{AtomicBool, Ordering};
@@ -34,6 +34,7 @@ fn config(replicates: u64, chunk: u64, target: Option<f64>) -> EnsembleConfig {
         target_half_width: target,
         max_generations: 100_000,
         arrival_fractions: vec![0.5, 1.0],
+        scheme: Scheme::Auto,
     }
 }
 

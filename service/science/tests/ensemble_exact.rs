@@ -4,7 +4,7 @@
 
 mod common;
 use common::model;
-use demefix_science::ensemble::{End, EnsembleConfig, EnsembleJob};
+use demefix_science::ensemble::{End, EnsembleConfig, EnsembleJob, Scheme};
 use demefix_science::exact::{self, ExactConfig};
 use demefix_science::{Model, Rule, Scope, Start};
 
@@ -29,6 +29,7 @@ fn compare(name: &str, m: &Model, seed: u64, replicates: u64) {
             target_half_width: None,
             max_generations: 10_000_000,
             arrival_fractions: vec![],
+            scheme: Scheme::Auto,
         };
         let job = EnsembleJob::new(m, Start::Deme(deme), &config).unwrap();
         let g = job.ticks_per_generation() as f64;

@@ -3,7 +3,7 @@
 
 mod common;
 use common::{model, star};
-use demefix_science::ensemble::{End, EnsembleConfig, EnsembleJob};
+use demefix_science::ensemble::{End, EnsembleConfig, EnsembleJob, Scheme};
 use demefix_science::{Model, Rule, Scope, Start};
 
 fn pool() -> rayon::ThreadPool {
@@ -21,6 +21,7 @@ fn config(seed: u64, replicates: u64) -> EnsembleConfig {
         target_half_width: None,
         max_generations: 1_000_000,
         arrival_fractions: vec![],
+        scheme: Scheme::Auto,
     }
 }
 

@@ -64,7 +64,7 @@ pub struct Indicator {
 /// Where an approximation holds, computed for one model.
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct ValidRegime {
-    /// Name of the approximation (`branching` or `strong_migration`).
+    /// Name of the approximation (`branching`, `strong_migration` or `weak_selection`).
     pub approximation: &'static str,
     /// The indicators, in a fixed order per approximation.
     pub indicators: Vec<Indicator>,
@@ -76,7 +76,7 @@ pub struct ValidRegime {
 
 impl ValidRegime {
     /// Starts an empty regime (inside until an indicator says otherwise).
-    fn new(approximation: &'static str) -> Self {
+    pub(crate) fn new(approximation: &'static str) -> Self {
         Self {
             approximation,
             indicators: Vec::new(),
@@ -86,7 +86,13 @@ impl ValidRegime {
     }
 
     /// Adds an indicator; when it violates `limit`, records `reason` (a sentence).
-    fn check(&mut self, name: &'static str, value: f64, limit: Option<Limit>, reason: &str) {
+    pub(crate) fn check(
+        &mut self,
+        name: &'static str,
+        value: f64,
+        limit: Option<Limit>,
+        reason: &str,
+    ) {
         let inside = limit.is_none_or(|l| l.holds(value));
         if !inside {
             self.inside = false;

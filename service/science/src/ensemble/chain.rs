@@ -10,8 +10,24 @@
 //! one (one uniform each; the uniform of the changing event also picks the change), below it
 //! the count is drawn at once as `1 + floor(E / -ln(1 - lambda))`, `E ~ Exp(1)`, and the
 //! change by a fresh uniform. Both give the same distribution; the switch only saves work.
-//! Wright-Fisher draws one binomial per deme per generation with the model's refill
-//! probabilities.
+//!
+//! Wright-Fisher draws one binomial per deme per generation. Its refill probabilities come
+//! from one sparse product over the matrix's nonzeros with the source values of death-birth
+//! under the same scope (`p_i = P_i`, `q_i = Q_i` under `deme` scope, normalised by
+//! `P_i + Q_i` under `neighbourhood` scope), each of `p_i`, `q_i` its own sum; a deme with
+//! `p_i = 0` or `q_i = 0` is refilled with 0 or `n_i` variants without a draw. A generation
+//! costs `O(m + nnz)` plus one draw per deme whose outcome is open, whatever the sizes.
+//!
+//! Under the generation scheme (see [`super::scheme`]) a death-birth or birth-death replicate
+//! starts on the jump chain and alternates with leaped generations by the switch rule of
+//! `chain/leap.rs`: a state change that leaves its deme with [`LEAP_FROM_COPIES`] of each
+//! type ends the jump chain's run (`Status::Switch`); a generation with nothing to leap
+//! hands back, and the jump chain's sums are rebuilt from the counts. Under the event scheme
+//! the threshold is `u64::MAX` and the jump chain never hands over.
+//!
+//! Sizes: counts, sizes and ticks are `u64` (a deme of `10^8` and `N` up to `2^53` are fine;
+//! the tick limit `max_generations * N` saturates), counts enter floats through `i64`
+//! (exact below `2^53`), and time sums are `u128` in the accumulator.
 //!
 //! Every rate is built from per-target sums over source demes, `P_i = sum_j w_ij a_j` and
 //! `Q_i = sum_j w_ij c_j`, where `w` is the rule's matrix and `(a_j, c_j)` depend on `k_j`
@@ -32,14 +48,18 @@
 //! residents make a sum that must be 0 exactly 0, and all sums are rebuilt from scratch
 //! every [`REFRESH_EVERY`] state changes, so rounding never accumulates without bound.
 
+mod leap;
 mod small;
 
+pub use leap::{LEAP_FROM_CHANGES, LEAP_FROM_COPIES, LEAP_WHILE_COPIES};
 pub use small::SMALL_MAX_DEMES;
 
+use super::scheme::Stepping;
 use super::stream::uniform;
 use super::tree::SumTree;
 use crate::model::{Model, Rule, Scope};
 use crate::start::Start;
+use leap::{hands_over, LeapWork};
 use rand::Rng;
 use rand_distr::{Binomial, Distribution, Exp1};
 use serde::{Deserialize, Serialize};
@@ -85,7 +105,9 @@ pub struct ReplicateOutcome {
     /// Ticks until fixation or loss (the last state change if the chain froze); for an
     /// unresolved replicate, the tick at which it was stopped.
     pub time: u64,
-    /// Number of state changes (events that changed the count vector, or generations).
+    /// Number of state changes: events that changed the count vector, Wright-Fisher
+    /// generations, and under the generation scheme one per leaped generation plus the
+    /// changes run event by event inside it.
     pub state_changes: u64,
     /// For a fixed replicate, `arrivals[deme * fractions + f]` is the first tick at which
     /// the variant's count in `deme` reached `ceil(arrival_fractions[f] * n_deme)`; empty
@@ -137,6 +159,12 @@ pub(crate) struct Tables {
     refresh_every: u64,
     /// Tick limit: `max_generations * N` events, or `max_generations` generations.
     max_ticks: u64,
+    /// A state change leaving its deme with this many of each type hands the jump chain
+    /// over to the generation scheme (`u64::MAX`: never, the event scheme).
+    leap_from: u64,
+    /// Source-value code of Wright-Fisher's recruitment (`DB_DEME` or `DB_NEIGHBOURHOOD`,
+    /// the scopes of death-birth's `p_i`).
+    wf_code: u8,
     /// Fixed start deme, or cumulative start weights to draw it from.
     start_deme: Option<usize>,
     start_cumulative: Vec<f64>,
@@ -164,6 +192,7 @@ impl Tables {
         start: Start,
         max_generations: u64,
         fractions: &[f64],
+        stepping: Stepping,
     ) -> Self {
         let kind = match (model.rule(), model.scope()) {
             (Rule::DeathBirth, Scope::Deme) => Kind::DeathBirthDeme,
@@ -258,6 +287,15 @@ impl Tables {
                 || (4 * kernel.nnz() >= m * m && m <= DENSE_MAX_DEMES),
             refresh_every: REFRESH_EVERY,
             max_ticks,
+            leap_from: if stepping.leaps(model.rule()) {
+                LEAP_FROM_COPIES
+            } else {
+                u64::MAX
+            },
+            wf_code: match model.scope() {
+                Scope::Deme => DB_DEME,
+                Scope::Neighbourhood => DB_NEIGHBOURHOOD,
+            },
             start_deme,
             start_cumulative,
             resident: None,
@@ -553,6 +591,9 @@ fn draw_wait<R: Rng>(rng: &mut R, total: f64, denom: f64, lambda: f64) -> (u64, 
 pub(crate) enum Status {
     /// The state changed and is not absorbing.
     Running,
+    /// The replicate changes scheme: the event chain hands over to leaped generations, or
+    /// a generation with nothing to leap hands back to the event chain.
+    Switch,
     /// The replicate ended.
     Done(End),
 }
@@ -576,7 +617,20 @@ pub(crate) struct Replicate {
     since_refresh: u64,
     arrivals: Vec<u64>,
     next_arrival: Vec<usize>,
-    refill: Vec<f64>,
+    /// Wright-Fisher scratch: source values `(a_j, c_j)` and refill probabilities
+    /// `(p_i, q_i)` of the generation's start; empty for the jump chains.
+    wf: WrightFisherWork,
+    /// Scratch of the generation scheme; empty unless the replicate may leap.
+    leap: LeapWork,
+}
+
+/// Per-generation scratch of a Wright-Fisher replicate.
+#[derive(Debug, Clone, Default)]
+struct WrightFisherWork {
+    a: Vec<f64>,
+    c: Vec<f64>,
+    p: Vec<f64>,
+    q: Vec<f64>,
 }
 
 impl Replicate {
@@ -600,7 +654,21 @@ impl Replicate {
             since_refresh: 0,
             arrivals: vec![u64::MAX; m * t.fractions],
             next_arrival: vec![0; m],
-            refill: vec![0.0; m],
+            wf: if jump {
+                WrightFisherWork::default()
+            } else {
+                WrightFisherWork {
+                    a: vec![0.0; m],
+                    c: vec![0.0; m],
+                    p: vec![0.0; m],
+                    q: vec![0.0; m],
+                }
+            },
+            leap: if jump && t.leap_from != u64::MAX {
+                LeapWork::new(m)
+            } else {
+                LeapWork::default()
+            },
         }
     }
 
@@ -645,11 +713,16 @@ impl Replicate {
         }
     }
 
-    /// Runs the jump chain until the replicate ends.
-    fn run_jump<R: Rng, const K: u8, const ALL: bool>(&mut self, t: &Tables, rng: &mut R) -> End {
+    /// Runs the jump chain until the replicate ends or hands over to the generation scheme.
+    fn run_jump<R: Rng, const K: u8, const ALL: bool>(
+        &mut self,
+        t: &Tables,
+        rng: &mut R,
+    ) -> Status {
         loop {
-            if let Status::Done(end) = self.jump_step::<R, K, ALL>(t, rng) {
-                return end;
+            match self.jump_step::<R, K, ALL>(t, rng) {
+                Status::Running => {}
+                other => return other,
             }
         }
     }
@@ -924,13 +997,15 @@ impl Replicate {
             self.ticks = t.max_ticks;
             return Status::Done(End::Unresolved);
         }
-        if ALL {
+        let j = if ALL {
             let (j, up) = self.dense.pick(v);
             self.apply_dense::<K>(t, j, up);
+            j
         } else {
             let leaf = self.tree.find(v);
             self.apply::<K>(t, leaf >> 1, leaf & 1 == 0);
-        }
+            leaf >> 1
+        };
         self.changes += 1;
         self.last_change = self.ticks;
         if self.variants == 0 {
@@ -943,18 +1018,19 @@ impl Replicate {
         if self.since_refresh >= t.refresh_every {
             self.refresh(t);
         }
+        if hands_over(self.k[j], t.n[j], t.leap_from) {
+            return Status::Switch;
+        }
         Status::Running
     }
-    /// One Wright-Fisher generation.
-    pub(crate) fn generation<R: Rng>(&mut self, model: &Model, t: &Tables, rng: &mut R) -> Status {
-        model.refill_probabilities(&self.k, &mut self.refill);
-        let frozen = self
-            .refill
-            .iter()
-            .zip(&self.k)
-            .zip(&t.n)
-            .all(|((&p, &k), &n)| (p <= 0.0 && k == 0) || (p >= 1.0 && k == n));
-        if frozen {
+    /// One Wright-Fisher generation: the refill probabilities of every deme by one sparse
+    /// product over the matrix's nonzeros (`P_i = sum_j B[i][j] a_j`, `Q_i` likewise, the
+    /// source values of death-birth under the same scope), then one binomial draw per deme
+    /// whose outcome is not determined: a deme with no variant sources (`P_i = 0`) gets 0
+    /// variants and one with no resident sources (`Q_i = 0`) gets `n_i`, without a draw.
+    /// The cost is `O(m + nnz)` plus the draws, independent of the deme sizes.
+    pub(crate) fn generation<R: Rng, const S: u8>(&mut self, t: &Tables, rng: &mut R) -> Status {
+        if self.refill::<S>(t) {
             self.ticks = self.last_change;
             return Status::Done(End::Lost);
         }
@@ -963,10 +1039,17 @@ impl Replicate {
         }
         self.ticks += 1;
         let mut variants = 0;
+        let w = &self.wf;
         for i in 0..t.demes() {
-            let p = self.refill[i].clamp(0.0, 1.0);
-            let draw = Binomial::new(t.n[i], p).expect("p in [0, 1]");
-            self.k[i] = draw.sample(rng);
+            let (p, q, n) = (w.p[i], w.q[i], t.n[i]);
+            self.k[i] = if q == 0.0 {
+                n
+            } else if p == 0.0 {
+                0
+            } else {
+                let draw = Binomial::new(n, p.min(1.0)).expect("p in (0, 1]");
+                draw.sample(rng)
+            };
             variants += self.k[i];
         }
         self.variants = variants;
@@ -984,8 +1067,45 @@ impl Replicate {
         }
     }
 
-    /// Runs a reset replicate on the small path of capacity `cap`.
-    fn run_small_any<R: Rng>(&mut self, t: &Tables, rng: &mut R, cap: usize) -> End {
+    /// Wright-Fisher refill probabilities `(p_i, q_i)` of the current counts into `self.wf`
+    /// (each its own sum, so an impossible outcome has probability exactly 0); returns
+    /// whether no deme can change (every deme settled: empty with `p_i = 0` or full with
+    /// `q_i = 0`).
+    fn refill<const S: u8>(&mut self, t: &Tables) -> bool {
+        let w = &mut self.wf;
+        for j in 0..t.demes() {
+            (w.a[j], w.c[j]) = t.source_values::<S>(j, self.k[j]);
+        }
+        let mut frozen = true;
+        for i in 0..t.demes() {
+            let (p, q, _, _) = target_sums(t, &self.k, i, &w.a, &w.c);
+            let (p, q) = match S {
+                DB_NEIGHBOURHOOD => {
+                    let s = p + q;
+                    (p / s, q / s)
+                }
+                _ => (p, q),
+            };
+            w.p[i] = p;
+            w.q[i] = q;
+            let ki = self.k[i];
+            frozen &= (p == 0.0 && ki == 0) || (q == 0.0 && ki == t.n[i]);
+        }
+        frozen
+    }
+
+    /// Runs Wright-Fisher generations until the replicate ends.
+    fn run_wright_fisher<R: Rng, const S: u8>(&mut self, t: &Tables, rng: &mut R) -> End {
+        loop {
+            if let Status::Done(end) = self.generation::<R, S>(t, rng) {
+                return end;
+            }
+        }
+    }
+
+    /// Runs a reset replicate on the small path of capacity `cap`, until it ends or hands
+    /// over to the generation scheme.
+    fn run_small_any<R: Rng>(&mut self, t: &Tables, rng: &mut R, cap: usize) -> Status {
         match (t.code(), cap) {
             (DB_DEME, 2) => self.run_small::<R, DB_DEME, 2>(t, rng),
             (DB_DEME, 4) => self.run_small::<R, DB_DEME, 4>(t, rng),
@@ -1014,43 +1134,68 @@ impl Replicate {
         }
     }
 
-    /// Runs a fresh replicate to its end, drawing everything from `rng`.
+    /// Runs the jump chain (its state built from the counts) until the replicate ends or
+    /// hands over to the generation scheme.
+    fn run_events<R: Rng>(&mut self, t: &Tables, rng: &mut R) -> Status {
+        let small = match t.demes() {
+            m @ 1..=SMALL_MAX_DEMES if t.rebuild_all => m + (m & 1),
+            _ => 0,
+        };
+        match (t.kind, t.rebuild_all) {
+            _ if small > 0 => self.run_small_any(t, rng, small),
+            (Kind::DeathBirthDeme, true) => self.run_jump::<R, DB_DEME, true>(t, rng),
+            (Kind::DeathBirthDeme, false) => self.run_jump::<R, DB_DEME, false>(t, rng),
+            (Kind::DeathBirthNeighbourhood, true) => {
+                self.run_jump::<R, DB_NEIGHBOURHOOD, true>(t, rng)
+            }
+            (Kind::DeathBirthNeighbourhood, false) => {
+                self.run_jump::<R, DB_NEIGHBOURHOOD, false>(t, rng)
+            }
+            (_, true) => self.run_jump::<R, BD, true>(t, rng),
+            (_, false) => self.run_jump::<R, BD, false>(t, rng),
+        }
+    }
+
+    /// Runs a jump-chain replicate to its end, alternating between the event chain and
+    /// leaped generations as the generation scheme's switch rule says (chain/leap.rs).
+    fn run_jump_chain<R: Rng>(&mut self, t: &Tables, rng: &mut R) -> End {
+        loop {
+            if let Status::Done(end) = self.run_events(t, rng) {
+                return end;
+            }
+            let status = loop {
+                match self.leap_generation_any(t, rng) {
+                    Status::Running => {}
+                    other => break other,
+                }
+            };
+            if let Status::Done(end) = status {
+                return end;
+            }
+            self.refresh(t);
+        }
+    }
+
+    /// Runs a fresh replicate of `model` (whose tables `t` are) to its end, drawing
+    /// everything from `rng`.
     pub(crate) fn run<R: Rng>(
         &mut self,
         model: &Model,
         t: &Tables,
         rng: &mut R,
     ) -> ReplicateOutcome {
+        debug_assert_eq!(model.demes(), t.demes(), "tables of another model");
         let start = t.draw_start(rng);
         self.reset(t, start);
         let end = if self.variants == t.total {
             End::Fixed
         } else {
-            let small = if t.rebuild_all && t.kind != Kind::WrightFisher {
-                match t.demes() {
-                    m @ 1..=SMALL_MAX_DEMES => m + (m & 1),
-                    _ => 0,
+            match (t.kind, t.wf_code) {
+                (Kind::WrightFisher, DB_NEIGHBOURHOOD) => {
+                    self.run_wright_fisher::<R, DB_NEIGHBOURHOOD>(t, rng)
                 }
-            } else {
-                0
-            };
-            match (t.kind, t.rebuild_all) {
-                _ if small > 0 => self.run_small_any(t, rng, small),
-                (Kind::WrightFisher, _) => loop {
-                    if let Status::Done(end) = self.generation(model, t, rng) {
-                        break end;
-                    }
-                },
-                (Kind::DeathBirthDeme, true) => self.run_jump::<R, DB_DEME, true>(t, rng),
-                (Kind::DeathBirthDeme, false) => self.run_jump::<R, DB_DEME, false>(t, rng),
-                (Kind::DeathBirthNeighbourhood, true) => {
-                    self.run_jump::<R, DB_NEIGHBOURHOOD, true>(t, rng)
-                }
-                (Kind::DeathBirthNeighbourhood, false) => {
-                    self.run_jump::<R, DB_NEIGHBOURHOOD, false>(t, rng)
-                }
-                (Kind::BirthDeath, true) => self.run_jump::<R, BD, true>(t, rng),
-                (Kind::BirthDeath, false) => self.run_jump::<R, BD, false>(t, rng),
+                (Kind::WrightFisher, _) => self.run_wright_fisher::<R, DB_DEME>(t, rng),
+                _ => self.run_jump_chain(t, rng),
             }
         };
         let arrivals = if end == End::Fixed {
@@ -1082,7 +1227,13 @@ mod tests {
     }
 
     fn check_against_model(model: &Model, rebuild_all: bool, seed: u64) {
-        let mut t = Tables::new(model, Start::Deme(0), u64::MAX / 1024, &[0.5, 1.0]);
+        let mut t = Tables::new(
+            model,
+            Start::Deme(0),
+            u64::MAX / 1024,
+            &[0.5, 1.0],
+            Stepping::Event,
+        );
         t.rebuild_all = rebuild_all;
         t.refresh_every = u64::MAX; // test the incremental sums alone
         t.build_resident();
@@ -1122,7 +1273,13 @@ mod tests {
 
     /// The small path (fixed-size arrays, capacity 6 for up to 6 demes) against the model.
     fn check_small_against_model(model: &Model, seed: u64) {
-        let mut t = Tables::new(model, Start::Deme(0), u64::MAX / 1024, &[0.5, 1.0]);
+        let mut t = Tables::new(
+            model,
+            Start::Deme(0),
+            u64::MAX / 1024,
+            &[0.5, 1.0],
+            Stepping::Event,
+        );
         assert!(t.rebuild_all);
         t.refresh_every = 7; // exercise the refresh of the small path too
         let st = small::SmallTables::<6>::new(&t);
@@ -1220,6 +1377,48 @@ mod tests {
                         seed += 2;
                     }
                 }
+            }
+        }
+    }
+
+    #[test]
+    fn wright_fisher_refill_equals_the_model_and_impossible_outcomes_are_exactly_zero() {
+        let rows = vec![
+            vec![0.6, 0.4, 0.0, 0.0],
+            vec![0.0, 0.5, 0.5, 0.0],
+            vec![0.0, 0.0, 0.7, 0.3],
+            vec![0.2, 0.0, 0.0, 0.8],
+        ];
+        let sizes = vec![3, 1, 4, 2];
+        for scope in [Scope::Deme, Scope::Neighbourhood] {
+            let model = model(Rule::WrightFisher, scope, sizes.clone(), &rows, 0.3);
+            let t = Tables::new(&model, Start::Deme(0), 100, &[], Stepping::Generation);
+            let mut rep = Replicate::new(&t);
+            let mut want = vec![0.0; 4];
+            // every count vector of the chain
+            for code in 0..(4 * 2 * 5 * 3) {
+                let mut c = code;
+                for (i, &n) in sizes.iter().enumerate() {
+                    rep.k[i] = c % (n + 1);
+                    c /= n + 1;
+                }
+                let frozen = match scope {
+                    Scope::Deme => rep.refill::<DB_DEME>(&t),
+                    Scope::Neighbourhood => rep.refill::<DB_NEIGHBOURHOOD>(&t),
+                };
+                model.refill_probabilities(&rep.k, &mut want);
+                for (i, &want) in want.iter().enumerate() {
+                    let (p, q) = (rep.wf.p[i], rep.wf.q[i]);
+                    assert!((p - want).abs() <= 1e-14, "{:?} {i}: {p} vs {want}", rep.k);
+                    assert!((p + q - 1.0).abs() <= 1e-14);
+                    // no variant sources: p exactly 0; no resident sources: q exactly 0
+                    let sources: Vec<usize> = model.kernel().row(i).map(|(j, _)| j).collect();
+                    assert_eq!(p == 0.0, sources.iter().all(|&j| rep.k[j] == 0));
+                    assert_eq!(q == 0.0, sources.iter().all(|&j| rep.k[j] == sizes[j]));
+                }
+                let variants: u64 = rep.k.iter().sum();
+                // this matrix is irreducible: only the absorbing states are frozen
+                assert_eq!(frozen, variants == 0 || variants == 10, "{:?}", rep.k);
             }
         }
     }

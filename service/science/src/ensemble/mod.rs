@@ -21,12 +21,15 @@ use std::sync::atomic::{AtomicBool, Ordering};
 
 mod accumulator;
 pub mod chain;
+pub mod paired;
+pub mod scheme;
 pub mod stream;
 mod tree;
 
 pub use accumulator::{Accumulator, ChunkOutcome, ChunkRecord, ReplayError, EARLY_STOP_GRID};
 pub use chain::{End, ReplicateOutcome};
 use chain::{Replicate, Tables};
+pub use scheme::{Scheme, Stepping};
 
 /// Settings of one ensemble.
 #[derive(Debug, Clone, PartialEq)]
@@ -46,6 +49,25 @@ pub struct EnsembleConfig {
     pub max_generations: u64,
     /// Frequencies in `(0, 1]` whose first arrival per deme is recorded.
     pub arrival_fractions: Vec<f64>,
+    /// How death-birth and birth-death replicates step through time (see [`scheme`]);
+    /// Wright-Fisher is always stepped by generations.
+    pub scheme: Scheme,
+}
+
+impl Default for EnsembleConfig {
+    /// The job defaults (DEVELOPERS.md, "Defaults and limits of a job") with seed 0 and no
+    /// arrival fractions, so that callers can write `..EnsembleConfig::default()`.
+    fn default() -> Self {
+        Self {
+            seed: 0,
+            replicates: 10_000,
+            chunk_size: 1_000,
+            target_half_width: None,
+            max_generations: 10_000_000,
+            arrival_fractions: Vec::new(),
+            scheme: Scheme::Auto,
+        }
+    }
 }
 
 /// Receives progress after every chunk. Called from the driver thread.
@@ -144,6 +166,7 @@ pub struct EnsembleJob<'a> {
     config: EnsembleConfig,
     key: [u8; 32],
     fingerprint: [u8; 32],
+    stepping: Stepping,
     tables: Tables,
 }
 
@@ -185,18 +208,42 @@ impl<'a> EnsembleJob<'a> {
         for f in &config.arrival_fractions {
             h.update(f.to_bits().to_le_bytes());
         }
+        // The stepping changes results. Only the generation scheme of an event rule adds
+        // bytes, so event-scheme and Wright-Fisher checkpoints keep the fingerprints they had.
+        let stepping = config.scheme.resolve(model);
+        if stepping.leaps(model.rule()) {
+            h.update(b"stepping/generation/v1");
+        }
         Ok(Self {
             model,
             config: config.clone(),
             key,
             fingerprint: h.finalize().into(),
+            stepping,
             tables: Tables::new(
                 model,
                 start,
                 config.max_generations,
                 &config.arrival_fractions,
+                stepping,
             ),
         })
+    }
+
+    /// The stepping the replicates use (the config's scheme resolved for the model).
+    pub fn stepping(&self) -> Stepping {
+        self.stepping
+    }
+
+    /// Stable name of the method for a result: `ensemble:event` or `ensemble:generation`.
+    pub fn method(&self) -> &'static str {
+        self.stepping.method()
+    }
+
+    /// The known bias of the stepping for a result's warnings (`None` when exact in
+    /// distribution).
+    pub fn known_bias(&self) -> Option<&'static str> {
+        self.stepping.known_bias(self.model.rule())
     }
 
     /// The 32-byte key of this cell's random streams.

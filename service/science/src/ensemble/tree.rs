@@ -3,8 +3,9 @@
 //! change one pair at a time with their ancestors recomputed from their children
 //! (`O(log m)`), so the sums never drift from the leaves.
 
-/// Complete binary tree stored in an array; leaves start at `cap`.
-#[derive(Debug, Clone)]
+/// Complete binary tree stored in an array; leaves start at `cap` (the default is an empty
+/// tree with no leaves).
+#[derive(Debug, Clone, Default)]
 pub(crate) struct SumTree {
     cap: usize,
     node: Vec<f64>,

@@ -5,7 +5,8 @@
 //! single variant starting in deme `k` (in a uniformly random individual of deme `k`; by
 //! exchangeability inside a deme, the same as any given individual of deme `k`), and the
 //! partial derivatives of a start-weighted combination of them with respect to the kernel
-//! entries ([`gradient`]).
+//! entries ([`gradient`]), and the [`ValidRegime`](crate::approx::ValidRegime) where the
+//! expansion can be trusted ([`regime`]).
 //!
 //! # Method
 //! The reproductive-value-weighted variant frequency `x̂ = sum_a pi_a x_a` is a martingale of
@@ -64,9 +65,11 @@
 
 mod gradient;
 mod operator;
+mod regime;
 mod values;
 
 pub use gradient::{gradient, WeakGradient};
+pub use regime::{regime, MAX_RELATIVE_FIRST_ORDER};
 
 use crate::model::{Model, Rule, Scope};
 use faer::prelude::*;

@@ -9,8 +9,8 @@
 #![allow(clippy::needless_range_loop)]
 
 use super::{
-    as_f64, draw_wait, rates_padded, target_sums, End, Replicate, Status, Tables, BD, DB_DEME,
-    DB_NEIGHBOURHOOD,
+    as_f64, draw_wait, hands_over, rates_padded, target_sums, End, Replicate, Status, Tables, BD,
+    DB_DEME, DB_NEIGHBOURHOOD,
 };
 use rand::Rng;
 
@@ -306,8 +306,8 @@ impl Replicate {
             return Status::Done(End::Unresolved);
         }
         let (j, up) = s.pick(v);
+        let j = j.min(C - 1);
         if s.apply::<K>(t, st, j, up) {
-            let j = j.min(C - 1);
             self.k[j] = s.k[j];
             self.record_arrivals(t, j);
             s.next_thr[j] = next_threshold(t, self.next_arrival[j], j);
@@ -325,25 +325,30 @@ impl Replicate {
             self.since_refresh = 0;
             s.refresh::<K>(t, st);
         }
+        if hands_over(s.k[j], st.n[j], t.leap_from) {
+            return Status::Switch;
+        }
         Status::Running
     }
 
-    /// Runs a reset replicate (dense path state) to its end on the small path.
+    /// Runs a replicate (its dense path state built from the counts) on the small path until
+    /// it ends or hands over to the generation scheme; the counts are copied back.
     pub(crate) fn run_small<R: Rng, const K: u8, const C: usize>(
         &mut self,
         t: &Tables,
         rng: &mut R,
-    ) -> End {
+    ) -> Status {
         let st = SmallTables::<C>::new(t);
         let mut s = Small::<C>::load(self, t);
-        let end = loop {
-            if let Status::Done(end) = self.small_step::<R, K, C>(&mut s, &st, t, rng) {
-                break end;
+        let status = loop {
+            match self.small_step::<R, K, C>(&mut s, &st, t, rng) {
+                Status::Running => {}
+                other => break other,
             }
         };
         let m = t.demes();
         self.k.copy_from_slice(&s.k[..m]);
         self.variants = s.variants;
-        end
+        status
     }
 }

@@ -4,9 +4,11 @@
 //! tests run the `demefix serve` binary as a child process and kill it.
 
 mod api {
+    mod approximations;
     pub mod helpers;
     mod matrices;
     mod queue;
+    mod whatif;
 }
 
 use api::helpers::{
@@ -721,6 +723,7 @@ async fn an_expired_lease_is_rescued_and_the_stale_worker_is_fenced_out() {
         provenance: "{}".to_owned(),
         results: "[]".to_owned(),
         sensitivity: None,
+        whatif: None,
         warnings: vec![],
     };
     assert!(store.finish(&run.id, "token-c", &ok).await.unwrap());

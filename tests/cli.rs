@@ -161,7 +161,7 @@ fn the_thread_count_does_not_change_ensemble_results() {
         without_run_specific_lines(&two.stdout)
     );
     let r = &a["results"][0];
-    assert_eq!(r["method"], "ensemble");
+    assert_eq!(r["method"], "ensemble:event");
     assert_eq!(r["replicates"], 1200);
     let counted = r["fixed"].as_u64().unwrap() + r["lost"].as_u64().unwrap();
     assert_eq!(counted + r["unresolved"].as_u64().unwrap(), 1200);
@@ -611,4 +611,429 @@ fn link_sensitivities_are_ranked_per_result_and_vanish_where_theory_says() {
             .any(|w| w.as_str().unwrap().contains("outputs.sensitivity")),
         "{doc:#}"
     );
+}
+
+/// The entry called `name` of a result's `approximations`.
+fn approximation<'a>(result: &'a Value, name: &str) -> &'a Value {
+    result["approximations"]
+        .as_array()
+        .expect("an approximations array")
+        .iter()
+        .find(|e| e["name"] == name)
+        .unwrap_or_else(|| panic!("no `{name}` in {result:#}"))
+}
+
+fn warnings_of(doc: &Value) -> Vec<String> {
+    doc["warnings"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|w| w.as_str().unwrap().to_owned())
+        .collect()
+}
+
+#[test]
+fn approximation_jobs_answer_with_the_first_approximation_inside_its_regime() {
+    let mut job = small_job();
+    job["method"] = json!({"kind": "approximation"});
+    job["selection"]["s"] = json!([0.001, 0.3]);
+    let doc = stdout_json(&run_stdin(&job, &[]));
+    let results = doc["results"].as_array().unwrap();
+    assert_eq!(results.len(), 4);
+    for r in results {
+        let entries = r["approximations"].as_array().unwrap();
+        let names: Vec<&str> = entries
+            .iter()
+            .map(|e| e["name"].as_str().unwrap())
+            .collect();
+        assert_eq!(names, ["weak_selection", "strong_migration", "branching"]);
+        for e in entries {
+            let regime = &e["valid_regime"];
+            assert_eq!(regime["approximation"], e["name"]);
+            assert!(!regime["indicators"].as_array().unwrap().is_empty());
+            assert!(
+                e.get("discrepancy").is_none(),
+                "no exact answer to compare with"
+            );
+        }
+        // Weak selection at s = 0.001 on 9 individuals: |s rho'/rho| is about 0.004, inside;
+        // at s = 0.3 nothing is inside, so the first computed (weak selection) answers.
+        assert_eq!(r["method"], "approximation:weak_selection", "{r:#}");
+        let weak = approximation(r, "weak_selection");
+        assert_eq!(r["fixation_probability"], weak["fixation_probability"]);
+        assert_eq!(r["valid_regime"], weak["valid_regime"]);
+        let inside = r["valid_regime"]["inside"].as_bool().unwrap();
+        assert_eq!(inside, r["s"] == 0.001, "{r:#}");
+        let c = &weak["coefficients"];
+        let s = r["s"].as_f64().unwrap();
+        let linear = c["neutral"].as_f64().unwrap() + s * c["slope"].as_f64().unwrap();
+        assert!(
+            (linear.clamp(0.0, 1.0) - weak["fixation_probability"].as_f64().unwrap()).abs() < 1e-15
+        );
+    }
+    assert_eq!(doc["provenance"]["method"], "approximation:weak_selection");
+    let warnings = warnings_of(&doc);
+    assert!(
+        warnings
+            .iter()
+            .any(|w| w.contains("no screening approximation is inside") && w.contains("0.3")),
+        "{warnings:?}"
+    );
+    for name in ["strong_migration", "branching"] {
+        assert!(
+            warnings
+                .iter()
+                .any(|w| w.contains(&format!("`{name}` is outside its valid regime"))),
+            "{name}: {warnings:?}"
+        );
+    }
+
+    // The job's own order decides when nothing is inside.
+    job["method"]["approximations"] = json!(["branching", "weak_selection"]);
+    let doc = stdout_json(&run_stdin(&job, &[]));
+    let strong = &doc["results"][2];
+    assert_eq!(strong["s"], 0.3);
+    assert_eq!(strong["method"], "approximation:branching");
+    assert_eq!(strong["approximations"].as_array().unwrap().len(), 2);
+    assert_eq!(doc["results"][0]["method"], "approximation:weak_selection");
+    assert_eq!(doc["provenance"]["method"], "approximation");
+    assert_eq!(
+        doc["spec"]["method"]["approximations"],
+        json!(["branching", "weak_selection"])
+    );
+}
+
+#[test]
+fn exact_results_carry_every_approximation_with_its_discrepancy() {
+    let mut job = small_job();
+    job["selection"]["s"] = json!([0.001]);
+    let doc = stdout_json(&run_stdin(&job, &[]));
+    assert!(
+        doc["spec"]["method"].get("approximations").is_none(),
+        "not written when absent"
+    );
+    for r in doc["results"].as_array().unwrap() {
+        assert_eq!(r["method"], "exact");
+        let exact = r["fixation_probability"].as_f64().unwrap();
+        for e in r["approximations"].as_array().unwrap() {
+            let value = e["fixation_probability"].as_f64().unwrap();
+            assert_eq!(e["discrepancy"].as_f64().unwrap(), value - exact);
+            assert!(e.get("inside_ci95").is_none());
+        }
+        // The first-order expansion (references.md §5; Allen et al. 2017, Nature 544:227-230,
+        // approach) is off by O(s^2): at s = 0.001 the exact answer is within 1e-5 of it.
+        let weak = approximation(r, "weak_selection");
+        assert!(
+            weak["discrepancy"].as_f64().unwrap().abs() < 1e-5,
+            "{weak:#}"
+        );
+    }
+    job["method"]["approximations"] = json!(["strong_migration"]);
+    let doc = stdout_json(&run_stdin(&job, &[]));
+    let entries = doc["results"][0]["approximations"].as_array().unwrap();
+    assert_eq!(entries.len(), 1);
+    assert_eq!(entries[0]["name"], "strong_migration");
+    job["method"]["approximations"] = json!([]);
+    let doc = stdout_json(&run_stdin(&job, &[]));
+    assert!(doc["results"][0].get("approximations").is_none());
+}
+
+#[test]
+fn an_ensemble_compares_in_standard_errors_and_takes_link_rows_from_an_in_regime_approximation() {
+    // Demes of 100 and 80 at s = 0.1: n_i s >= 8, inside the branching regime; too little
+    // migration for the strong-migration limit and too much selection for weak selection.
+    let job = json!({
+        "population": {"demes": [{"id": "x", "size": 100}, {"id": "y", "size": 80}]},
+        "migration": {"orientation": "recruitment", "matrix": [[0.9, 0.1], [0.2, 0.8]]},
+        "dynamics": {"rule": "death_birth"},
+        "selection": {"s": 0.1},
+        "start": ["x", "uniform"],
+        "method": {"kind": "ensemble", "seed": 3, "replicates": 2000, "chunk_size": 500},
+        "outputs": {"sensitivity": true, "times": false}
+    });
+    let doc = stdout_json(&run_stdin(&job, &[]));
+    for r in doc["results"].as_array().unwrap() {
+        let p = r["fixation_probability"].as_f64().unwrap();
+        let n = r["replicates"].as_f64().unwrap();
+        let ci: Vec<f64> = serde_json::from_value(r["ci95"].clone()).unwrap();
+        for e in r["approximations"].as_array().unwrap() {
+            let value = e["fixation_probability"].as_f64().unwrap();
+            let d = e["discrepancy"].as_f64().unwrap();
+            assert_eq!(d, value - p);
+            let z = e["discrepancy_standard_errors"].as_f64().unwrap();
+            assert!((z - d / (p * (1.0 - p) / n).sqrt()).abs() < 1e-9 * z.abs().max(1.0));
+            let inside = ci[0] <= value && value <= ci[1];
+            assert_eq!(e["inside_ci95"].as_bool().unwrap(), inside, "{e:#}");
+        }
+        assert!(approximation(r, "branching")["valid_regime"]["inside"]
+            .as_bool()
+            .unwrap());
+    }
+    // Rows of other methods (paired simulation) may stand beside them.
+    let rows: Vec<&Value> = doc["sensitivity"]
+        .as_array()
+        .expect("a sensitivity array")
+        .iter()
+        .filter(|r| r["method"] == "approximation:branching")
+        .collect();
+    assert_eq!(rows.len(), 4, "2 starts x 2 links from branching");
+    for r in rows {
+        assert!(r.get("d_mean_fixation_generations").is_none());
+        assert!(
+            r.get("d_fixation_probability_per_flow").is_none(),
+            "not a flows job"
+        );
+    }
+    let warnings = warnings_of(&doc);
+    assert!(
+        warnings
+            .iter()
+            .any(|w| w.contains("`strong_migration` is outside its valid regime")),
+        "{warnings:?}"
+    );
+}
+
+#[test]
+fn approximation_link_rows_are_ranked_and_flows_jobs_get_per_flow_derivatives() {
+    let mut job = small_job();
+    job["method"] = json!({"kind": "approximation"});
+    job["selection"]["s"] = json!([0.001]);
+    job["outputs"] = json!({"sensitivity": true});
+    let doc = stdout_json(&run_stdin(&job, &[]));
+    let rows = doc["sensitivity"].as_array().unwrap();
+    assert_eq!(rows.len(), 12, "2 starts x 6 links");
+    for group in rows.chunks(6) {
+        let d: Vec<f64> = group
+            .iter()
+            .map(|r| {
+                assert_eq!(r["method"], "approximation:weak_selection");
+                let flow = r["flow"].as_f64().unwrap();
+                let matrix = &doc["spec"]["migration"]["matrix"];
+                let (from, to) = (r["from"].as_str().unwrap(), r["to"].as_str().unwrap());
+                let index = |id: &str| ["a", "b", "c"].iter().position(|x| *x == id).unwrap();
+                assert_eq!(matrix[index(from)][index(to)].as_f64().unwrap(), flow);
+                assert!(r["d_fixation_probability_per_flow"].is_number());
+                assert!(r["flow_meaning"].as_str().unwrap().contains("raw flow"));
+                r["d_fixation_probability"].as_f64().unwrap()
+            })
+            .collect();
+        assert!(
+            d.windows(2).all(|w| w[0] <= w[1]),
+            "most lowering first: {d:?}"
+        );
+    }
+}
+
+#[test]
+fn per_flow_derivatives_match_finite_differences_of_the_reduced_flow() {
+    // The chain rule through the flows normalisation (model.md: B normalises the columns of
+    // the flows) against a central difference of the exact answers of the job itself, with
+    // the raw flow changed by ±h.
+    let mut job = small_job();
+    job["method"] = json!({"kind": "exact"});
+    job["start"] = json!(["a"]);
+    job["outputs"] = json!({"sensitivity": true});
+    let doc = stdout_json(&run_stdin(&job, &[]));
+    let rows = doc["sensitivity"].as_array().unwrap();
+    assert_eq!(rows.len(), 6);
+    let index = |id: &Value| ["a", "b", "c"].iter().position(|x| id == x).unwrap();
+    let h = 1e-4;
+    for r in rows {
+        let (from, to) = (index(&r["from"]), index(&r["to"]));
+        let at = |delta: f64| {
+            let mut changed = job.clone();
+            changed["outputs"] = json!({});
+            let flow = changed["migration"]["matrix"][from][to].as_f64().unwrap();
+            changed["migration"]["matrix"][from][to] = json!(flow + delta);
+            let out = stdout_json(&run_stdin(&changed, &[]));
+            out["results"][0]["fixation_probability"].as_f64().unwrap()
+        };
+        let reduce = (at(-h) - at(h)) / (2.0 * h);
+        let got = r["d_fixation_probability_per_flow"].as_f64().unwrap();
+        // truncation O(h^2), round-off about 1e-16 / h
+        assert!(
+            (got - reduce).abs() <= 1e-6 * got.abs() + 1e-10,
+            "{r:#}: finite difference {reduce:e}"
+        );
+        assert!(r["d_mean_fixation_generations_per_flow"].is_number());
+    }
+}
+
+#[test]
+fn bad_approximation_lists_are_reported_at_their_pointers() {
+    let mut job = small_job();
+    job["method"]["approximations"] = json!(["branching", "kimura", "branching", 3]);
+    let got = problems(job.to_string().as_bytes());
+    let pointers: Vec<&str> = got.iter().map(|(p, _)| p.as_str()).collect();
+    assert_eq!(
+        pointers,
+        [
+            "/method/approximations/1",
+            "/method/approximations/2",
+            "/method/approximations/3"
+        ],
+        "{got:?}"
+    );
+    assert!(got[0].1.contains("weak_selection"), "{got:?}");
+    assert!(got[1].1.contains("twice"), "{got:?}");
+    job["method"] = json!({"kind": "approximation", "approximations": []});
+    let got = problems(job.to_string().as_bytes());
+    assert_eq!(got.len(), 1, "{got:?}");
+    assert_eq!(got[0].0, "/method/approximations");
+    job["method"]["approximations"] = json!("branching");
+    assert_eq!(
+        problems(job.to_string().as_bytes())[0].0,
+        "/method/approximations"
+    );
+}
+
+#[test]
+fn exact_what_ifs_and_a_plan_come_back_in_the_run_document() {
+    let mut job = small_job();
+    job["interventions"] = json!([
+        {"name": "nothing", "changes": [{"action": "scale_link", "from": "a", "to": "b", "factor": 1}]},
+        {"name": "isolate-a", "changes": [{"action": "scale_out_of", "deme": "a", "factor": 0}]}
+    ]);
+    job["plan"] = json!({"budget": 0.3, "shortlist": 2});
+    let doc = stdout_json(&run_stdin(&job, &[]));
+    assert_eq!(
+        doc["spec"]["plan"],
+        json!({"budget": 0.3, "steps": 10, "shortlist": 2, "s": 0.1})
+    );
+    let rows = doc["interventions"]
+        .as_array()
+        .expect("an interventions array");
+    assert_eq!(rows.len(), 4, "2 scenarios x 1 s x 2 starts");
+    for r in rows {
+        assert_eq!(r["method"], "exact");
+        assert!(
+            r.get("change_ci95").is_none(),
+            "exact changes carry no interval"
+        );
+        let (base, scen, change) = (
+            r["baseline_fixation_probability"].as_f64().unwrap(),
+            r["scenario_fixation_probability"].as_f64().unwrap(),
+            r["change_fixation_probability"].as_f64().unwrap(),
+        );
+        assert_eq!(change, scen - base);
+        match (r["name"].as_str().unwrap(), r["start"].as_str().unwrap()) {
+            ("nothing", _) => {
+                assert_eq!(change, 0.0);
+                assert_eq!(r["change_mean_fixation_generations"], 0.0);
+            }
+            ("isolate-a", "a") => {
+                assert_eq!(scen, 0.0, "no lineage leaves the start deme");
+                assert!(r.get("scenario_mean_fixation_generations").is_none());
+            }
+            _ => assert!(scen < base),
+        }
+    }
+    // The baseline of every row is the job's own result.
+    for r in rows {
+        let result = doc["results"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .find(|x| x["start"] == r["start"])
+            .unwrap();
+        assert_eq!(
+            r["baseline_fixation_probability"],
+            result["fixation_probability"]
+        );
+    }
+    let plan = &doc["plan"];
+    assert_eq!(plan["method"], "exact");
+    let mut before = plan["baseline_objective"].as_f64().unwrap();
+    let steps = plan["steps"].as_array().unwrap();
+    assert!(!steps.is_empty());
+    for step in steps {
+        assert_eq!(step["objective_before"].as_f64().unwrap(), before);
+        let after = step["objective_after"].as_f64().unwrap();
+        assert!(after < before, "{step:#}");
+        assert!(step["budget_used"].as_f64().unwrap() <= 0.3);
+        assert_eq!(step["ranked_by"], "exact_adjoint");
+        assert_eq!(step["candidates"].as_array().unwrap().len(), 2);
+        before = after;
+    }
+    assert!(["budget", "no_improvement", "steps", "no_links"]
+        .contains(&plan["stop_reason"].as_str().unwrap()));
+}
+
+#[test]
+fn an_ensemble_what_if_pairs_its_replicates_with_the_job_s_own_ensemble() {
+    let mut job = ensemble_job();
+    job["interventions"] = json!([
+        {"name": "same", "changes": [{"action": "scale_into", "deme": "x", "factor": 1}]},
+        {"name": "halve", "changes": [{"action": "scale_link", "from": "y", "to": "x", "factor": 0.5}]}
+    ]);
+    job["outputs"]["sensitivity"] = json!(true);
+    let doc = stdout_json(&run_stdin(&job, &[]));
+    let results = doc["results"].as_array().unwrap();
+    let rows = doc["interventions"].as_array().unwrap();
+    assert_eq!(rows.len(), 2 * 2 * 2, "2 scenarios x 2 s x 2 starts");
+    for r in rows {
+        let result = results
+            .iter()
+            .find(|x| x["s"] == r["s"] && x["start"] == r["start"])
+            .unwrap();
+        // Same key, same replicates: the baseline is the job's ensemble, interval included.
+        assert_eq!(
+            r["baseline_fixation_probability"],
+            result["fixation_probability"]
+        );
+        assert_eq!(r["baseline_ci95"], result["ci95"]);
+        assert_eq!(r["interval_method"], "newcombe_1998_paired_hybrid_score");
+        let ci: Vec<f64> = serde_json::from_value(r["change_ci95"].clone()).unwrap();
+        let change = r["change_fixation_probability"].as_f64().unwrap();
+        assert!(ci[0] <= change && change <= ci[1]);
+        if r["name"] == "same" {
+            assert_eq!(change, 0.0);
+            assert_eq!(r["pairs"]["baseline_only"], 0);
+            assert_eq!(r["pairs"]["scenario_only"], 0);
+            for by_fraction in r["arrival_change_generations"]
+                .as_object()
+                .unwrap()
+                .values()
+            {
+                for a in by_fraction.as_object().unwrap().values() {
+                    assert_eq!(a["change_mean"], 0.0);
+                    assert_eq!(a["change_median"], 0.0);
+                }
+            }
+        }
+    }
+    let paired: Vec<&Value> = doc["sensitivity"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .filter(|r| r["method"] == "ensemble_paired_secant")
+        .collect();
+    assert_eq!(paired.len(), 2 * 2 * 2, "2 s x 2 starts x both links");
+    for r in paired {
+        let ci: Vec<f64> = serde_json::from_value(r["ci95"].clone()).unwrap();
+        let d = r["d_fixation_probability"].as_f64().unwrap();
+        assert!(ci[0] <= d && d <= ci[1], "{r:#}");
+    }
+}
+
+#[test]
+fn bad_interventions_and_plans_exit_2_with_their_pointers() {
+    let mut job = small_job();
+    job["interventions"] = json!([
+        {"name": "x", "changes": [
+            {"action": "scale_link", "from": "a", "to": "nowhere", "factor": 0.5},
+            {"action": "scale_out_of", "deme": "b", "factor": -0.5}]},
+        {"name": "x", "changes": [{"action": "close_link", "from": "a", "to": "b"}]}
+    ]);
+    job["plan"] = json!({"budget": -0.1});
+    let found = problems(job.to_string().as_bytes());
+    let at: Vec<&str> = found.iter().map(|(p, _)| p.as_str()).collect();
+    for want in [
+        "/interventions/0/changes/0/to",
+        "/interventions/0/changes/1/factor",
+        "/interventions/1/name",
+        "/plan/budget",
+    ] {
+        assert!(at.contains(&want), "{want} missing from {found:?}");
+    }
 }

@@ -278,6 +278,8 @@ fn run(args: &RunArgs) -> Result<(), Failure> {
         provenance: &provenance,
         results: &outcome.results,
         sensitivity: &outcome.sensitivity,
+        interventions: &outcome.whatif.interventions,
+        plan: outcome.whatif.plan.as_ref(),
         warnings: &warnings,
         disclaimer: DISCLAIMER,
     })

@@ -8,22 +8,34 @@
 //!   `Start::deme_weights` and `start::combine`;
 //! * ensemble: one `ensemble::run` per `(s, start)`, all on the caller's thread pool, with
 //!   progress summed over the whole job;
-//! * approximation: the well-mixed reference (the only approximation wired in so far);
+//! * approximation: the screening approximations of `method.approximations`, the primary
+//!   one chosen per `s` ([`screening`] owns the rule, the regimes' warnings and their link
+//!   rows);
 //! * `auto` was resolved during validation; if its exact solve fails to converge, the job
 //!   falls back to ensembles with a warning.
 //!
-//! Every result carries the well-mixed reference for the same total size.
+//! Every result carries the well-mixed reference for the same total size, and the screening
+//! approximations beside it (for exact and ensemble results with their discrepancy, added by
+//! `screening::attach` once the primary method is done).
 
-use crate::document::{LinkSensitivity, RunResult, TimeUnits, SENSITIVITY_MEANING};
-use crate::spec::{MethodKind, ResolvedMethod, ValidatedJob};
+use crate::document::{
+    LinkSensitivity, RunResult, TimeUnits, FLOW_SENSITIVITY_MEANING, SENSITIVITY_MEANING,
+};
+use crate::spec::{MethodKind, ResolvedMethod, SelfFlowsSpec, ValidatedJob};
 use demefix_science::ensemble::{
     self, Accumulator, ChunkRecord, EnsembleError, ProgressObserver, StopReason,
 };
 use demefix_science::exact::{self, ExactError};
+use demefix_science::sensitivity::{flow_effects, KernelPartials, LinkEffect};
 use demefix_science::start::combine;
+use demefix_science::Orientation;
 use demefix_science::Start;
 use demefix_science::{well_mixed, Model, ModelError, Rule};
 use std::sync::atomic::{AtomicBool, Ordering};
+
+mod screening;
+
+pub use screening::UNLISTED_WEAK_MAX_UNKNOWNS;
 
 /// Results of a job and what the computation had to say about it.
 #[derive(Debug, Clone, PartialEq)]
@@ -36,6 +48,8 @@ pub struct Outcome {
     pub warnings: Vec<String>,
     /// The method used, for provenance: `exact`, `ensemble` or `approximation:<name>`.
     pub method: String,
+    /// `interventions` and `plan` ([`crate::whatif`]), empty unless the job asks for them.
+    pub whatif: crate::whatif::WhatIfResults,
 }
 
 /// Why a job could not be computed.
@@ -93,6 +107,15 @@ fn model_at(job: &ValidatedJob, s: f64) -> Result<Model, ComputeError> {
     Ok(job.model().with_selection(s)?)
 }
 
+/// [`ComputeError::Cancelled`] once the cancellation flag is raised.
+fn not_cancelled(cancel: &AtomicBool) -> Result<(), ComputeError> {
+    if cancel.load(Ordering::Relaxed) {
+        Err(ComputeError::Cancelled)
+    } else {
+        Ok(())
+    }
+}
+
 /// One committed step of a job's ensembles: what one chunk added to cell `cell` (the
 /// `(s, start)` pairs in job order). Storing steps, not whole accumulators, keeps every
 /// commit the size of one chunk, however long the run.
@@ -142,13 +165,14 @@ pub fn run_resumable(
     on_chunk: &mut dyn FnMut(&ChunkStep),
 ) -> Result<Outcome, ComputeError> {
     let resume = resume.unwrap_or_default();
-    match job.method() {
+    let mut outcome = match job.method() {
         ResolvedMethod::Exact { .. } => match run_exact(job, pool, cancel) {
             Ok((results, sensitivity)) => Ok(Outcome {
                 results,
                 sensitivity,
                 warnings: Vec::new(),
                 method: "exact".to_owned(),
+                whatif: Default::default(),
             }),
             Err(ComputeError::Exact(e @ ExactError::NotConverged { .. }))
                 if job.spec().method.kind == MethodKind::Auto =>
@@ -163,27 +187,12 @@ pub fn run_resumable(
             Err(e) => Err(e),
         },
         ResolvedMethod::Ensemble => run_ensembles(job, pool, observer, cancel, resume, on_chunk),
-        ResolvedMethod::Approximation => {
-            let rule = job.spec().dynamics.rule;
-            let total = job.population().total();
-            let mut results = Vec::new();
-            for &s in job.selection() {
-                let wm = well_mixed::reference(rule, total, s);
-                for &start in job.starts() {
-                    results.push(RunResult::approximation(s, job.start_label(start), &wm));
-                }
-            }
-            let method = results
-                .first()
-                .map_or_else(|| "approximation".to_owned(), |r| r.method.clone());
-            Ok(Outcome {
-                results,
-                sensitivity: Vec::new(),
-                warnings: Vec::new(),
-                method,
-            })
-        }
-    }
+        ResolvedMethod::Approximation => screening::run_approximations(job, pool, cancel),
+    }?;
+    screening::attach(job, pool, cancel, &mut outcome)?;
+    // What-if scenarios, the plan and paired ensemble link rows (service/src/whatif.rs).
+    crate::whatif::attach(job, pool, cancel, &mut outcome)?;
+    Ok(outcome)
 }
 
 fn run_exact(
@@ -196,9 +205,7 @@ fn run_exact(
     let mut results = Vec::new();
     let mut sensitivity = Vec::new();
     for &s in job.selection() {
-        if cancel.load(Ordering::Relaxed) {
-            return Err(ComputeError::Cancelled);
-        }
+        not_cancelled(cancel)?;
         let model = model_at(job, s)?;
         let solution = pool.install(|| exact::solve(&model, job.exact_config()))?;
         let wm = well_mixed::reference(rule, total, s);
@@ -213,37 +220,60 @@ fn run_exact(
                 units(job),
             ));
             if job.spec().outputs.sensitivity && rule != Rule::WrightFisher {
-                if cancel.load(Ordering::Relaxed) {
-                    return Err(ComputeError::Cancelled);
-                }
+                not_cancelled(cancel)?;
                 let weights = start.deme_weights(&model);
                 let found =
                     pool.install(|| exact::sensitivity(&model, job.exact_config(), &weights))?;
-                sensitivity.extend(link_rows(job, s, start, &model, &found));
+                sensitivity.extend(link_rows(
+                    job,
+                    s,
+                    start,
+                    &model,
+                    &found.d_fixation_probability,
+                    Some(&found.d_mean_fixation_generations),
+                    "exact_adjoint",
+                ));
             }
         }
     }
     Ok((results, sensitivity))
 }
 
-/// The link rows of one exact sensitivity, in api.md's sign (moving probability from the link
-/// to retention), the most lowering first (ties in kernel order).
+/// The link rows of one start's kernel partials (of the fixation probability, and of the mean
+/// fixation time when the method has them), computed by `method`, in api.md's sign (moving
+/// probability from the link to retention), the most lowering first (ties in kernel order).
+/// A `flows` job also gets each row's derivative per unit reduction of its raw flow, through
+/// the normalisation (`sensitivity::flow_effects`).
 fn link_rows(
     job: &ValidatedJob,
     s: f64,
     start: Start,
     model: &Model,
-    found: &exact::ExactSensitivity,
+    fixation: &KernelPartials,
+    fixation_time: Option<&KernelPartials>,
+    method: &'static str,
 ) -> Vec<LinkSensitivity> {
     let rule = model.rule();
     let times = job.spec().outputs.times;
-    let fixation = found.d_fixation_probability.link_effects(rule);
-    let fixation_time = found.d_mean_fixation_generations.link_effects(rule);
+    let time = |d: f64| (times && d.is_finite()).then_some(d);
+    let fixation = fixation.link_effects(rule);
+    let fixation_time = fixation_time.map(|t| t.link_effects(rule));
+    let migration = &job.spec().migration;
+    let per_flow = |links: &[LinkEffect]| -> Option<Vec<f64>> {
+        let retention = match migration.self_flows {
+            SelfFlowsSpec::Keep => None,
+            SelfFlowsSpec::Retention(p) => Some(p),
+        };
+        (migration.orientation == Orientation::Flows)
+            .then(|| flow_effects(links, model.kernel(), &migration.matrix, retention, rule))
+    };
+    let fixation_per_flow = per_flow(&fixation);
+    let time_per_flow = fixation_time.as_deref().and_then(per_flow);
     let mut rows: Vec<((usize, usize), LinkSensitivity)> = fixation
         .iter()
-        .zip(&fixation_time)
-        .map(|(p, t)| {
-            let d_time = -t.derivative;
+        .enumerate()
+        .map(|(n, p)| {
+            let flows = fixation_per_flow.is_some();
             (
                 (p.row, p.col),
                 LinkSensitivity {
@@ -252,9 +282,18 @@ fn link_rows(
                     from: job.deme_id(p.from).to_owned(),
                     to: job.deme_id(p.to).to_owned(),
                     d_fixation_probability: -p.derivative,
-                    d_mean_fixation_generations: (times && d_time.is_finite()).then_some(d_time),
-                    method: "exact_adjoint",
+                    d_mean_fixation_generations: fixation_time
+                        .as_ref()
+                        .and_then(|t| time(-t[n].derivative)),
+                    method,
                     meaning: SENSITIVITY_MEANING,
+                    flow: flows.then(|| migration.matrix[p.from][p.to]),
+                    d_fixation_probability_per_flow: fixation_per_flow.as_ref().map(|f| -f[n]),
+                    d_mean_fixation_generations_per_flow: time_per_flow
+                        .as_ref()
+                        .and_then(|t| time(-t[n])),
+                    flow_meaning: flows.then_some(FLOW_SENSITIVITY_MEANING),
+                    ci95: None,
                 },
             )
         })
@@ -309,6 +348,15 @@ fn run_ensembles(
     let mut results = Vec::new();
     let mut warnings = Vec::new();
     let mut cell = 0usize;
+    // The stepping depends on the rule and the total size only, so it is the job's.
+    let stepping = config.scheme.resolve(job.model());
+    if let Some(bias) = stepping.known_bias(rule) {
+        warnings.push(format!(
+            "ensembles used the generation scheme (method.scheme = `{}`, total size {total}): \
+             {bias}",
+            config.scheme.as_str()
+        ));
+    }
     for &s in job.selection() {
         let model = model_at(job, s)?;
         let wm = well_mixed::reference(rule, total, s);
@@ -351,7 +399,7 @@ fn run_ensembles(
                     summary.unresolved, summary.replicates, config.max_generations
                 ));
             }
-            results.push(RunResult::ensemble(
+            let mut result = RunResult::ensemble(
                 s,
                 label,
                 &summary,
@@ -359,13 +407,16 @@ fn run_ensembles(
                 &config.arrival_fractions,
                 &wm,
                 units(job),
-            ));
+            );
+            result.method = stepping.method().to_owned();
+            results.push(result);
         }
     }
     Ok(Outcome {
         results,
         sensitivity: Vec::new(),
         warnings,
-        method: "ensemble".to_owned(),
+        method: stepping.method().to_owned(),
+        whatif: Default::default(),
     })
 }

@@ -1,13 +1,17 @@
 //! The result document (`api.md`, "A run") and the field names of each result.
 //!
 //! This module owns how the science crate's answers are written down: one [`RunResult`] per
-//! `(s, start)`, with the method that produced it, the well-mixed reference beside it, and
-//! the `_days` twin of every time when the job gives `dynamics.generation_days`. Field order
+//! `(s, start)`, with the method that produced it, the well-mixed reference beside it, the
+//! screening approximations beside it ([`ApproximationEntry`], with their discrepancy from an
+//! exact or ensemble answer), and the `_days` twin of every time when the job gives
+//! `dynamics.generation_days`. Field order
 //! is fixed by the struct declarations, maps are sorted, and floats are written in shortest
 //! round-trip form, so the same answers always give the same bytes.
 
 use crate::provenance::Provenance;
 use crate::spec::JobSpec;
+use crate::whatif::{InterventionResult, PlanResult};
+use demefix_science::approx::ValidRegime;
 use demefix_science::ensemble::{EnsembleSummary, StopReason, TimeQuantiles};
 use demefix_science::exact::SolverReport;
 use demefix_science::start::DemeAnswer;
@@ -22,7 +26,8 @@ new variant of constant fitness 1 + s) and hold only as far as those assumptions
 not replace surveillance data or expert judgement; decisions rest with the responsible \
 public-health authorities and local regulations.";
 
-/// What the well-mixed reference assumes, for `valid_regime` of approximation results.
+/// What the well-mixed reference assumes: the reason in the `valid_regime` of a well-mixed
+/// result (given only when no screening approximation could be computed).
 pub const WELL_MIXED_REGIME: &str = "a single well-mixed population of the same total size: \
 ignores structure, so it matches the structured model only when migration mixes the demes \
 much faster than drift and selection act (and exactly for birth_death under conservative \
@@ -127,9 +132,9 @@ pub struct RunResult {
     /// Count vectors of the exact chain.
     #[serde(skip_serializing_if = "Option::is_none")]
     pub states: Option<u64>,
-    /// Where an approximation holds.
+    /// Where an approximation holds (approximation results).
     #[serde(skip_serializing_if = "Option::is_none")]
-    pub valid_regime: Option<&'static str>,
+    pub valid_regime: Option<ValidRegime>,
     /// Fixation probability in a well-mixed population of the same total size.
     pub well_mixed_fixation_probability: f64,
     /// Formula of the well-mixed reference (`moran`, `wright_fisher_exact`, ...).
@@ -137,6 +142,82 @@ pub struct RunResult {
     /// `fixation_probability / well_mixed_fixation_probability`.
     #[serde(skip_serializing_if = "Option::is_none")]
     pub ratio_to_well_mixed: Option<f64>,
+    /// Every screening approximation the job computed for this `(s, start)`, in the job's
+    /// order (`None` when the job computes none).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub approximations: Option<Vec<ApproximationEntry>>,
+}
+
+/// `rho(s) ≈ neutral + s slope`: the first-order weak-selection coefficients of a start.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+pub struct WeakCoefficients {
+    /// Neutral fixation probability.
+    pub neutral: f64,
+    /// `d rho / d s` at `s = 0`.
+    pub slope: f64,
+}
+
+/// One screening approximation beside a result (`approximations` of a result).
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct ApproximationEntry {
+    /// `branching`, `strong_migration` or `weak_selection`.
+    pub name: &'static str,
+    /// The approximation's fixation probability for this `(s, start)` (a weak-selection value
+    /// outside `[0, 1]` is written as the nearest bound; its regime says so).
+    pub fixation_probability: f64,
+    /// The weak-selection coefficients (`weak_selection` only).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub coefficients: Option<WeakCoefficients>,
+    /// Where the approximation holds, computed for this model and `s`.
+    pub valid_regime: ValidRegime,
+    /// `fixation_probability` minus the result's own (exact or ensemble results).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub discrepancy: Option<f64>,
+    /// The discrepancy in binomial standard errors `sqrt(p (1 - p) / replicates)` of the
+    /// ensemble estimate `p` (ensembles with `0 < p < 1`).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub discrepancy_standard_errors: Option<f64>,
+    /// Whether the approximation lies inside the ensemble's `ci95`.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub inside_ci95: Option<bool>,
+}
+
+impl ApproximationEntry {
+    /// An entry without a discrepancy.
+    pub fn new(
+        name: &'static str,
+        fixation_probability: f64,
+        coefficients: Option<WeakCoefficients>,
+        valid_regime: ValidRegime,
+    ) -> Self {
+        Self {
+            name,
+            fixation_probability,
+            coefficients,
+            valid_regime,
+            discrepancy: None,
+            discrepancy_standard_errors: None,
+            inside_ci95: None,
+        }
+    }
+
+    /// Records the discrepancy from `primary` when it is an exact or ensemble result.
+    pub fn compare_with(&mut self, primary: &RunResult) {
+        if primary.method != "exact" && !primary.method.starts_with("ensemble") {
+            return;
+        }
+        let p = primary.fixation_probability;
+        let difference = self.fixation_probability - p;
+        self.discrepancy = Some(difference);
+        if let Some([low, high]) = primary.ci95 {
+            self.inside_ci95 = Some((low..=high).contains(&self.fixation_probability));
+        }
+        // The binomial standard error of `fixed / replicates` (common practice).
+        if let Some(n) = primary.replicates.filter(|&n| n > 0) {
+            let se = (p * (1.0 - p) / n as f64).sqrt();
+            self.discrepancy_standard_errors = (se > 0.0).then(|| difference / se);
+        }
+    }
 }
 
 /// How to write times: whether at all, and the length of a generation in days.
@@ -207,6 +288,7 @@ impl RunResult {
             well_mixed_fixation_probability: wm.fixation_probability,
             well_mixed_method: wm.method,
             ratio_to_well_mixed: ratio,
+            approximations: None,
         }
     }
 
@@ -304,19 +386,46 @@ impl RunResult {
         r
     }
 
-    /// The well-mixed reference as the answer of method `approximation`.
+    /// A screening approximation as the answer of method `approximation`; `method` is
+    /// `approximation:<name>`.
+    pub fn screening(
+        s: f64,
+        start: &str,
+        method: &str,
+        fixation_probability: f64,
+        regime: ValidRegime,
+        wm: &WellMixedReference,
+    ) -> Self {
+        let mut r = Self::bare(s, start, method.to_owned(), fixation_probability, wm);
+        r.valid_regime = Some(regime);
+        r
+    }
+
+    /// The well-mixed reference as the answer of method `approximation`, when no screening
+    /// approximation could be computed; its regime is never marked inside.
     pub fn approximation(s: f64, start: &str, wm: &WellMixedReference) -> Self {
         let method = format!("approximation:well_mixed_{}", wm.method);
         let mut r = Self::bare(s, start, method, wm.fixation_probability, wm);
-        r.valid_regime = Some(WELL_MIXED_REGIME);
+        r.valid_regime = Some(ValidRegime {
+            approximation: "well_mixed",
+            indicators: Vec::new(),
+            inside: false,
+            reasons: vec![WELL_MIXED_REGIME.to_owned()],
+        });
         r
     }
 }
 
 /// What a link sensitivity means, written beside each entry.
 pub const SENSITIVITY_MEANING: &str = "change per unit of probability moved from this link to \
-local retention in the rule's matrix (B for death_birth, F for birth_death), rows kept \
-stochastic; negative: reducing the link lowers the quantity";
+local retention in the rule's matrix (B for death_birth and wright_fisher, F for \
+birth_death), rows kept stochastic; negative: reducing the link lowers the quantity";
+
+/// What the `_per_flow` derivatives of a `flows` job mean, written beside each entry.
+pub const FLOW_SENSITIVITY_MEANING: &str = "change per unit reduction of the raw flow \
+migration.matrix[from][to] as sent, the matrix normalised again as self_flows says (keep: \
+row or column sums; a number: stated retention, the other links sharing the rest); \
+negative: reducing the flow lowers the quantity";
 
 /// The effect of reducing one movement link on one result (`sensitivity` of api.md).
 #[derive(Debug, Clone, PartialEq, Serialize)]
@@ -335,10 +444,27 @@ pub struct LinkSensitivity {
     /// reported and fixation is possible).
     #[serde(skip_serializing_if = "Option::is_none")]
     pub d_mean_fixation_generations: Option<f64>,
-    /// How it was computed: `exact_adjoint`.
+    /// How it was computed: `exact_adjoint`, or `approximation:<name>` for the gradient of a
+    /// screening approximation.
     pub method: &'static str,
     /// [`SENSITIVITY_MEANING`].
     pub meaning: &'static str,
+    /// `flows` jobs: the raw flow `migration.matrix[from][to]` behind the link.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub flow: Option<f64>,
+    /// `flows` jobs: change of the fixation probability per unit reduction of that flow.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub d_fixation_probability_per_flow: Option<f64>,
+    /// `flows` jobs: the same for the mean conditional fixation time, generations.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub d_mean_fixation_generations_per_flow: Option<f64>,
+    /// `flows` jobs: [`FLOW_SENSITIVITY_MEANING`].
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub flow_meaning: Option<&'static str>,
+    /// Paired ensemble rows (`ensemble_paired_secant`, [`crate::whatif`]): 95% interval of
+    /// `d_fixation_probability`.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub ci95: Option<[f64; 2]>,
 }
 
 /// An arrival fraction as a map key: shortest round-trip decimal (`0.05`, `0.5`, `1`).
@@ -359,6 +485,12 @@ pub struct RunDocument<'a> {
     /// most lowering first.
     #[serde(skip_serializing_if = "<[LinkSensitivity]>::is_empty")]
     pub sensitivity: &'a [LinkSensitivity],
+    /// What-if scenarios against the baseline ([`crate::whatif`]), when the job has them.
+    #[serde(skip_serializing_if = "<[InterventionResult]>::is_empty")]
+    pub interventions: &'a [InterventionResult],
+    /// The greedy plan of link reductions ([`crate::whatif`]), when the job asks for one.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub plan: Option<&'a PlanResult>,
     /// Everything the caller should know about how the job was read and run.
     pub warnings: &'a [String],
     /// [`DISCLAIMER`].
@@ -385,6 +517,42 @@ mod tests {
         };
         let v = serde_json::to_value(q).unwrap();
         assert_eq!(v, serde_json::json!({"0.05": 1.0, "0.5": 2.0, "0.95": 3.0}));
+    }
+
+    #[test]
+    fn discrepancies_are_measured_against_exact_and_ensemble_answers_only() {
+        let wm = WellMixedReference {
+            fixation_probability: 0.2,
+            method: "moran",
+        };
+        let regime = ValidRegime {
+            approximation: "branching",
+            indicators: Vec::new(),
+            inside: true,
+            reasons: Vec::new(),
+        };
+        let entry = || ApproximationEntry::new("branching", 0.12, None, regime.clone());
+        let mut ensemble = RunResult::bare(0.1, "a", "ensemble".to_owned(), 0.1, &wm);
+        ensemble.ci95 = Some([0.09, 0.11]);
+        ensemble.replicates = Some(10_000);
+        let mut e = entry();
+        e.compare_with(&ensemble);
+        assert!((e.discrepancy.unwrap() - 0.02).abs() < 1e-15);
+        // standard error sqrt(0.1 * 0.9 / 10^4) = 0.003
+        assert!((e.discrepancy_standard_errors.unwrap() - 0.02 / 0.003).abs() < 1e-9);
+        assert_eq!(e.inside_ci95, Some(false));
+        ensemble.fixation_probability = 0.0;
+        let mut e = entry();
+        e.compare_with(&ensemble);
+        assert_eq!(
+            e.discrepancy_standard_errors, None,
+            "no standard error at p = 0"
+        );
+        let approx = RunResult::approximation(0.1, "a", &wm);
+        let mut e = entry();
+        e.compare_with(&approx);
+        assert_eq!(e, entry());
+        assert!(!approx.valid_regime.unwrap().inside);
     }
 
     #[test]

@@ -337,6 +337,8 @@ pub struct ReusableRun {
     pub results: String,
     /// Its link sensitivities (JSON text), copied byte for byte.
     pub sensitivity: Option<String>,
+    /// Its what-if answers (JSON text), copied byte for byte.
+    pub whatif: Option<String>,
     /// Its warnings (validation, then computation).
     pub warnings: Vec<String>,
 }
@@ -352,6 +354,8 @@ pub struct Reuse {
     pub results: String,
     /// The earlier link sensitivities, byte for byte.
     pub sensitivity: Option<String>,
+    /// The earlier what-if answers, byte for byte.
+    pub whatif: Option<String>,
     /// This submission's warnings, the earlier run's others, and a note.
     pub warnings: Vec<String>,
 }
@@ -384,6 +388,7 @@ pub fn reuse(new: &NewRun, earlier: &ReusableRun) -> Option<Reuse> {
         provenance,
         results: earlier.results.clone(),
         sensitivity: earlier.sensitivity.clone(),
+        whatif: earlier.whatif.clone(),
         warnings,
     })
 }
@@ -399,6 +404,8 @@ pub enum Finish {
         results: String,
         /// Link sensitivities JSON, when computed.
         sensitivity: Option<String>,
+        /// What-if answers JSON (`crate::whatif::WhatIfResults::to_json`), when computed.
+        whatif: Option<String>,
         /// Validation and computation warnings.
         warnings: Vec<String>,
     },
@@ -468,6 +475,12 @@ pub struct RunView<'a> {
     /// Link sensitivities, when the job asked for them and its method gives them.
     #[serde(skip_serializing_if = "Option::is_none")]
     pub sensitivity: Option<&'a RawValue>,
+    /// What-if scenarios against the baseline, when the job has them.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub interventions: Option<&'a RawValue>,
+    /// The greedy plan of link reductions, when the job asks for one.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub plan: Option<&'a RawValue>,
     /// Warnings.
     pub warnings: &'a [String],
     /// Why the run failed.
@@ -498,9 +511,26 @@ fn raw<'a>(id: &str, column: &'static str, text: &'a str) -> Result<&'a RawValue
     })
 }
 
+/// The members of the `whatif` column, served as top-level members of the run document.
+#[derive(Default, serde::Deserialize)]
+struct WhatIfColumn<'a> {
+    #[serde(borrow, default)]
+    interventions: Option<&'a RawValue>,
+    #[serde(borrow, default)]
+    plan: Option<&'a RawValue>,
+}
+
 impl<'a> RunView<'a> {
     /// The document of `run`.
     pub fn new(run: &'a crate::db::RunRecord) -> Result<Self, CorruptColumn> {
+        let whatif: WhatIfColumn<'a> = match run.whatif.as_deref() {
+            Some(text) => serde_json::from_str(text).map_err(|source| CorruptColumn {
+                id: run.id.clone(),
+                column: "whatif",
+                source,
+            })?,
+            None => WhatIfColumn::default(),
+        };
         let optional = |column, text: &'a Option<String>| {
             text.as_deref().map(|t| raw(&run.id, column, t)).transpose()
         };
@@ -518,6 +548,8 @@ impl<'a> RunView<'a> {
             provenance: optional("provenance", &run.provenance)?,
             results: optional("results", &run.results)?,
             sensitivity: optional("sensitivity", &run.sensitivity)?,
+            interventions: whatif.interventions,
+            plan: whatif.plan,
             warnings: &run.warnings,
             error: run.error.as_deref(),
             reused_from: run.reused_from.as_deref(),
@@ -610,6 +642,7 @@ mod tests {
             provenance: r#"{"request_sha256":"aa","method_version":"1"}"#.to_owned(),
             results: r#"[{"s":0.1,"fixation_probability":0.25}]"#.to_owned(),
             sensitivity: Some(r#"[{"s":0.1,"from":"a","to":"b"}]"#.to_owned()),
+            whatif: Some(r#"{"plan":{"s":0.1}}"#.to_owned()),
             warnings: earlier_warnings,
         };
         // Sending the recorded seed gives the same spec, hence the same hash.
@@ -619,6 +652,7 @@ mod tests {
         assert_eq!(reuse.reused_from, "run-1");
         assert_eq!(reuse.results, earlier.results);
         assert_eq!(reuse.sensitivity, earlier.sensitivity);
+        assert_eq!(reuse.whatif, earlier.whatif);
         assert_eq!(
             reuse.provenance,
             format!(

@@ -27,4 +27,5 @@ pub mod problem;
 pub mod provenance;
 pub mod server;
 pub mod spec;
+pub mod whatif;
 pub mod worker;

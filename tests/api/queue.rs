@@ -184,7 +184,7 @@ async fn run_while_an_intruder_tries_to_rescue_it(
     let results = done["results"].as_array().unwrap();
     assert_eq!(results.len(), 4, "two values of s times two starts");
     for r in results {
-        assert_eq!(r["method"], "ensemble");
+        assert_eq!(r["method"], "ensemble:event");
         assert_eq!(r["replicates"], replicates, "{r}");
         let counted = ["fixed", "lost", "unresolved"]
             .iter()

@@ -223,7 +223,7 @@ impl Store {
         insert_matrix(&mut tx, &new.matrix, &now).await?;
         let reuse = if new.allow_reuse {
             let earlier: Option<ReusableRow> = sqlx::query_as(
-                "SELECT id, provenance, results, warnings, sensitivity FROM runs
+                "SELECT id, provenance, results, warnings, sensitivity, whatif FROM runs
                  WHERE spec_sha256 = ? AND method_version = ? AND status = 'succeeded'
                  ORDER BY id LIMIT 1",
             )
@@ -245,12 +245,12 @@ impl Store {
             "INSERT INTO runs (id, status, series, spec, spec_sha256, request, request_sha256,
                                matrix_sha256, warnings, progress_total, submitted_at,
                                idempotency_key, provenance, results, progress_done,
-                               started_at, finished_at, reused_from, sensitivity)
+                               started_at, finished_at, reused_from, sensitivity, whatif)
              VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14,
                      CASE WHEN ?15 IS NULL THEN 0 ELSE ?10 END,
                      CASE WHEN ?15 IS NULL THEN NULL ELSE ?11 END,
                      CASE WHEN ?15 IS NULL THEN NULL ELSE ?11 END,
-                     ?15, ?16)",
+                     ?15, ?16, ?17)",
         )
         .bind(&new.id)
         .bind(if reuse.is_some() {
@@ -272,6 +272,7 @@ impl Store {
         .bind(reuse.as_ref().map(|r| &r.results))
         .bind(reuse.as_ref().map(|r| &r.reused_from))
         .bind(reuse.as_ref().and_then(|r| r.sensitivity.as_ref()))
+        .bind(reuse.as_ref().and_then(|r| r.whatif.as_ref()))
         .execute(&mut *tx)
         .await?;
         tx.commit().await?;
@@ -539,6 +540,7 @@ impl Store {
                 provenance,
                 results,
                 sensitivity,
+                whatif,
                 warnings,
             } => {
                 sqlx::query(
@@ -546,7 +548,7 @@ impl Store {
                      SET status = 'succeeded', provenance = ?1, results = ?2, warnings = ?3,
                          progress_done = progress_total, finished_at = ?4,
                          lease_token = NULL, lease_expires_ms = NULL, checkpoint = NULL,
-                         sensitivity = ?7
+                         sensitivity = ?7, whatif = ?8
                      WHERE id = ?5 AND lease_token = ?6 AND status = 'running'",
                 )
                 .bind(provenance)
@@ -556,6 +558,7 @@ impl Store {
                 .bind(id)
                 .bind(token)
                 .bind(sensitivity)
+                .bind(whatif)
                 .execute(&mut *tx)
                 .await?
             }

@@ -8,7 +8,7 @@ use crate::domain::{ReusableRun, RunStatus};
 /// Columns of [`RunRow`], in `SELECT` form.
 pub(super) const RUN_COLUMNS: &str = "id, status, series, spec, provenance, results, warnings, \
     error, progress_done, progress_total, submitted_at, started_at, finished_at, reused_from, \
-    sensitivity";
+    sensitivity, whatif";
 
 #[derive(Debug, sqlx::FromRow)]
 pub(super) struct RunRow {
@@ -27,6 +27,7 @@ pub(super) struct RunRow {
     finished_at: Option<String>,
     reused_from: Option<String>,
     sensitivity: Option<String>,
+    whatif: Option<String>,
 }
 
 /// A stored run. JSON members are the stored text.
@@ -62,6 +63,8 @@ pub struct RunRecord {
     pub reused_from: Option<String>,
     /// Link sensitivities (JSON array text), when computed.
     pub sensitivity: Option<String>,
+    /// What-if answers (JSON object text with `interventions` and/or `plan`), when computed.
+    pub whatif: Option<String>,
 }
 
 fn corrupt(id: &str, what: impl Into<String>) -> DbError {
@@ -94,6 +97,7 @@ impl RunRow {
             finished_at: self.finished_at,
             reused_from: self.reused_from,
             sensitivity: self.sensitivity,
+            whatif: self.whatif,
             id: self.id,
         })
     }
@@ -190,6 +194,7 @@ pub(super) struct ReusableRow {
     results: Option<String>,
     warnings: String,
     sensitivity: Option<String>,
+    whatif: Option<String>,
 }
 
 impl ReusableRow {
@@ -202,6 +207,7 @@ impl ReusableRow {
                 provenance,
                 results,
                 sensitivity: self.sensitivity,
+                whatif: self.whatif,
                 warnings,
             }),
             _ => None,

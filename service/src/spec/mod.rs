@@ -15,19 +15,24 @@
 //! `migration.self_flows` `keep`, `start` `["uniform"]`, `method.kind` `auto`,
 //! `method.replicates` [`DEFAULT_REPLICATES`], `method.chunk_size` [`DEFAULT_CHUNK_SIZE`],
 //! `method.max_generations` [`DEFAULT_MAX_GENERATIONS`], `outputs.times` `true`,
-//! `outputs.arrival_fractions` `[]`, `outputs.sensitivity` `false`.
+//! `outputs.arrival_fractions` `[]`, `outputs.sensitivity` `false`. `method.approximations`
+//! has no written default: absent, every approximation is computed in
+//! [`approximations::DEFAULT_ORDER`] and the member stays absent from the spec.
 
+pub mod approximations;
 pub mod csv;
 mod stored;
 mod walk;
+pub mod whatif;
 
+pub use approximations::ApproximationName;
 pub use stored::{
     is_sha256_hex, matrix_csv_text, matrix_document, matrix_ref, sha256_of_ref, FetchedMatrix,
     MatrixRefs, NoStoredMatrices, RefLookup, REF_PREFIX,
 };
 
 use crate::problem::{Pointer, Problem};
-use demefix_science::ensemble::EnsembleConfig;
+use demefix_science::ensemble::{EnsembleConfig, Scheme};
 use demefix_science::exact::{self, ExactConfig, ExactError};
 use demefix_science::migration::{self, Needed, Resolved};
 use demefix_science::{
@@ -65,6 +70,8 @@ const TOP_FIELDS: &[&str] = &[
     "start",
     "method",
     "outputs",
+    "interventions",
+    "plan",
 ];
 
 /// The requested method.
@@ -75,7 +82,8 @@ pub enum MethodKind {
     Exact,
     /// A seeded simulation ensemble.
     Ensemble,
-    /// Published approximations (for now: the well-mixed reference only).
+    /// Published screening approximations (`method.approximations`), the primary one chosen
+    /// per `s` by [`approximations::DEFAULT_ORDER`] or the job's own order.
     Approximation,
     /// Exact when the state space fits the limit, else ensemble.
     Auto,
@@ -91,7 +99,7 @@ pub enum ResolvedMethod {
     },
     /// A simulation ensemble per `(s, start)`.
     Ensemble,
-    /// The well-mixed reference.
+    /// The screening approximations.
     Approximation,
 }
 
@@ -176,6 +184,13 @@ pub struct MethodSpec {
     pub target_half_width: Option<f64>,
     /// Generations after which a replicate counts as unresolved.
     pub max_generations: u64,
+    /// How ensembles of death-birth and birth-death step through time (`auto`, `event`,
+    /// `generation`; `ensemble::scheme`). Wright-Fisher always steps by generations.
+    pub scheme: Scheme,
+    /// Screening approximations to compute, in order of preference (absent: all, in
+    /// [`approximations::DEFAULT_ORDER`]).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub approximations: Option<Vec<ApproximationName>>,
 }
 
 /// `outputs`.
@@ -185,8 +200,8 @@ pub struct OutputsSpec {
     pub times: bool,
     /// Frequencies in `(0, 1]` whose first arrival per deme ensembles record.
     pub arrival_fractions: Vec<f64>,
-    /// Report the link sensitivities of every result (exact method, death-birth and
-    /// birth-death).
+    /// Report the link sensitivities of every result (the exact adjoint for death-birth and
+    /// birth-death; an approximation's gradient for approximation and ensemble results).
     pub sensitivity: bool,
 }
 
@@ -213,6 +228,12 @@ pub struct JobSpec {
     pub method: MethodSpec,
     /// What to report.
     pub outputs: OutputsSpec,
+    /// What-if scenarios on movement links ([`whatif`]); left out when empty.
+    #[serde(skip_serializing_if = "Vec::is_empty")]
+    pub interventions: Vec<whatif::InterventionSpec>,
+    /// A greedy plan of link reductions ([`whatif`]); left out when absent.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub plan: Option<whatif::PlanSpec>,
 }
 
 /// How the warning of [`ValidatedJob::pick_seed`] begins.
@@ -242,12 +263,18 @@ pub struct ValidatedJob {
     exact: ExactConfig,
     states: Option<u64>,
     warnings: Vec<String>,
+    whatif: whatif::WhatIfJob,
 }
 
 impl ValidatedJob {
     /// The normalised job.
     pub fn spec(&self) -> &JobSpec {
         &self.spec
+    }
+
+    /// The what-if scenarios and the plan, in the science crate's terms.
+    pub fn whatif(&self) -> &whatif::WhatIfJob {
+        &self.whatif
     }
 
     /// Deme ids in deme order.
@@ -304,6 +331,15 @@ impl ValidatedJob {
         self.states
     }
 
+    /// The screening approximations to compute, in order of preference.
+    pub fn approximations(&self) -> &[ApproximationName] {
+        self.spec
+            .method
+            .approximations
+            .as_deref()
+            .unwrap_or(&approximations::DEFAULT_ORDER)
+    }
+
     /// Warnings found while validating (and when a seed was picked).
     pub fn warnings(&self) -> &[String] {
         &self.warnings
@@ -343,6 +379,7 @@ impl ValidatedJob {
             target_half_width: m.target_half_width,
             max_generations: m.max_generations,
             arrival_fractions: self.spec.outputs.arrival_fractions.clone(),
+            scheme: m.scheme,
         })
     }
 }
@@ -504,6 +541,8 @@ pub fn validate_with(
     );
     let method = method(&mut w, top.get("method"), &root.key("method"));
     let outputs = outputs(&mut w, top.get("outputs"), &root.key("outputs"));
+    let sweep = selection.as_ref().map(|(s, ..)| s.as_slice());
+    let (interventions, plan) = whatif::parse(&mut w, top, &ids, demes.is_some(), sweep);
 
     // Checks across members, on what could be read.
     if let (Some(rule), Some((_, Some(scope), scope_at)), Some(demes)) =
@@ -584,6 +623,8 @@ pub fn validate_with(
         start: starts.iter().map(|(label, _)| label.clone()).collect(),
         method,
         outputs,
+        interventions,
+        plan,
     };
     let starts: Vec<Start> = starts.into_iter().map(|(_, s)| s).collect();
     finish(spec, starts, resolved, limits)
@@ -699,36 +740,42 @@ fn finish(
             Err(_) => ResolvedMethod::Ensemble,
         },
         MethodKind::Ensemble => ResolvedMethod::Ensemble,
-        MethodKind::Approximation => {
-            warnings.push(
-                "method `approximation` gives only the well-mixed reference for now (a \
-                 population of the same total size without structure)"
-                    .to_owned(),
-            );
-            ResolvedMethod::Approximation
-        }
+        MethodKind::Approximation => ResolvedMethod::Approximation,
     };
-    if spec.outputs.sensitivity {
-        let exact = matches!(method, ResolvedMethod::Exact { .. });
-        if !exact {
-            warnings.push(
-                "outputs.sensitivity comes from the exact method only so far; this job's \
-                 method does not report link sensitivities"
-                    .to_owned(),
-            );
-        } else if rule == Rule::WrightFisher {
-            warnings.push(
-                "outputs.sensitivity is computed for death_birth and birth_death only so far; \
-                 none are reported for wright_fisher"
-                    .to_owned(),
-            );
-        }
+    // Approximation and ensemble sensitivities depend on the computed regimes: compute.rs
+    // warns about those.
+    if spec.outputs.sensitivity
+        && matches!(method, ResolvedMethod::Exact { .. })
+        && rule == Rule::WrightFisher
+    {
+        warnings.push(
+            "outputs.sensitivity of the exact method is computed for death_birth and \
+             birth_death only so far; none are reported for wright_fisher"
+                .to_owned(),
+        );
+    }
+    let no_approximations = spec
+        .method
+        .approximations
+        .as_ref()
+        .is_some_and(Vec::is_empty);
+    if spec.outputs.sensitivity && method == ResolvedMethod::Ensemble && no_approximations {
+        warnings.push(
+            "outputs.sensitivity: ensemble link rows come from the screening approximations, \
+             and method.approximations is empty; none are reported"
+                .to_owned(),
+        );
     }
     if !spec.outputs.arrival_fractions.is_empty() && method != ResolvedMethod::Ensemble {
         warnings.push(
             "arrival times come from ensembles only; this job's method does not report them"
                 .to_owned(),
         );
+    }
+    // What-if scenarios and the plan are checked against the model (spec/whatif.rs).
+    let whatif = whatif::check(&mut w, &spec, &model, method);
+    if w.has_problems() {
+        return Err(w.into_problems());
     }
     Ok(ValidatedJob {
         spec,
@@ -739,6 +786,7 @@ fn finish(
         exact: limits.exact.clone(),
         states,
         warnings,
+        whatif,
     })
 }
 
@@ -1350,6 +1398,8 @@ fn method(w: &mut Walker, v: Option<&Value>, at: &Pointer) -> Option<MethodSpec>
         chunk_size: DEFAULT_CHUNK_SIZE,
         target_half_width: None,
         max_generations: DEFAULT_MAX_GENERATIONS,
+        scheme: Scheme::Auto,
+        approximations: None,
     };
     let Some(v) = v else {
         return Some(spec);
@@ -1364,6 +1414,8 @@ fn method(w: &mut Walker, v: Option<&Value>, at: &Pointer) -> Option<MethodSpec>
             "chunk_size",
             "target_half_width",
             "max_generations",
+            "scheme",
+            "approximations",
         ],
     )?;
     let before = w.count();
@@ -1381,6 +1433,13 @@ fn method(w: &mut Walker, v: Option<&Value>, at: &Pointer) -> Option<MethodSpec>
     }
     if let Some(s) = map.get("seed") {
         spec.seed = w.whole(s, &at.key("seed"), 0, MAX_EXACT_INTEGER - 1);
+    }
+    if let Some(k) = map.get("scheme") {
+        spec.scheme = match w.choice(k, &at.key("scheme"), &["auto", "event", "generation"]) {
+            Some("event") => Scheme::Event,
+            Some("generation") => Scheme::Generation,
+            _ => Scheme::Auto,
+        };
     }
     let whole = |w: &mut Walker, key: &str, max: u64, default: u64| -> u64 {
         map.get(key)
@@ -1403,6 +1462,18 @@ fn method(w: &mut Walker, v: Option<&Value>, at: &Pointer) -> Option<MethodSpec>
             } else {
                 w.report(&t_at, "must lie in (0, 0.5]");
             }
+        }
+    }
+    if let Some(list) = map.get("approximations") {
+        let list_at = at.key("approximations");
+        spec.approximations = approximations::parse(w, list, &list_at);
+        if spec.kind == MethodKind::Approximation
+            && spec.approximations.as_ref().is_some_and(Vec::is_empty)
+        {
+            w.report(
+                &list_at,
+                "method `approximation` needs at least one approximation to compute",
+            );
         }
     }
     (w.count() == before).then_some(spec)

@@ -422,3 +422,40 @@ fn invalid_json_text_is_a_problem_at_the_root() {
     let p = parse_bytes(b"{\"population\": ", &Limits::default()).unwrap_err();
     assert_eq!(p[0].pointer, "");
 }
+
+#[test]
+fn approximations_default_to_all_unwritten_and_a_listed_order_is_kept() {
+    let job = ok(&base());
+    assert_eq!(job.approximations(), &approximations::DEFAULT_ORDER);
+    let spec = serde_json::to_value(job.spec()).unwrap();
+    assert!(spec["method"].get("approximations").is_none());
+    let mut v = base();
+    v["method"]["approximations"] = json!(["branching", "weak_selection"]);
+    let job = ok(&v);
+    assert_eq!(
+        job.approximations(),
+        &[
+            ApproximationName::Branching,
+            ApproximationName::WeakSelection
+        ]
+    );
+    let again = ok(&serde_json::to_value(job.spec()).unwrap());
+    assert_eq!(again.spec(), job.spec());
+    v["method"]["approximations"] = json!([]);
+    assert!(ok(&v).approximations().is_empty());
+}
+
+#[test]
+fn ensemble_sensitivities_without_approximations_are_warned_about() {
+    let mut v = base();
+    v["method"] = json!({"kind": "ensemble", "seed": 1, "approximations": []});
+    v["outputs"] = json!({"sensitivity": true});
+    let job = ok(&v);
+    assert!(
+        job.warnings()
+            .iter()
+            .any(|w| w.contains("method.approximations is empty")),
+        "{:?}",
+        job.warnings()
+    );
+}

@@ -217,16 +217,22 @@ impl Workers {
                     serde_json::to_string(&provenance),
                     serde_json::to_string(&outcome.results),
                     sensitivity,
+                    outcome.whatif.to_json(),
                 ) {
-                    (Ok(provenance), Ok(results), Ok(sensitivity)) => Finish::Succeeded {
-                        provenance,
-                        results,
-                        sensitivity,
-                        warnings,
-                    },
-                    (Err(e), _, _) | (_, Err(e), _) | (_, _, Err(e)) => Finish::Failed {
-                        error: format!("the results could not be written: {e}"),
-                    },
+                    (Ok(provenance), Ok(results), Ok(sensitivity), Ok(whatif)) => {
+                        Finish::Succeeded {
+                            provenance,
+                            results,
+                            sensitivity,
+                            whatif,
+                            warnings,
+                        }
+                    }
+                    (Err(e), ..) | (_, Err(e), ..) | (_, _, Err(e), _) | (.., Err(e)) => {
+                        Finish::Failed {
+                            error: format!("the results could not be written: {e}"),
+                        }
+                    }
                 }
             }
             Ok((_, Err(ComputeError::Cancelled))) => {

@@ -1,20 +1,11 @@
 //! Screening approximations through the service: approximation runs with their regimes and
 //! link rows, exact runs with discrepancies, and 422 pointers for bad `method.approximations`.
 
-use super::helpers::{small_job, spawn_app, TestApp};
+use super::helpers::{small_job, spawn_app};
 use serde_json::{json, Value};
 use std::time::Duration;
 
 const FINISH: Duration = Duration::from_secs(60);
-
-async fn finished(app: &TestApp, job: &Value) -> Value {
-    let res = app.post_job(job).await;
-    assert_eq!(res.status(), 202);
-    let run: Value = res.json().await.unwrap();
-    let done = app.wait_finished(run["id"].as_str().unwrap(), FINISH).await;
-    assert_eq!(done["status"], "succeeded", "{done:#}");
-    done
-}
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn approximation_and_exact_runs_report_regimes_discrepancies_and_warnings() {
@@ -23,7 +14,7 @@ async fn approximation_and_exact_runs_report_regimes_discrepancies_and_warnings(
     job["selection"]["s"] = json!([0.001, 0.3]);
     job["method"] = json!({"kind": "approximation"});
     job["outputs"] = json!({"sensitivity": true});
-    let approx = finished(&app, &job).await;
+    let approx = app.succeeded(&job, FINISH).await;
     assert_eq!(
         approx["provenance"]["method"],
         "approximation:weak_selection"
@@ -48,7 +39,7 @@ async fn approximation_and_exact_runs_report_regimes_discrepancies_and_warnings(
     );
 
     job["method"] = json!({"kind": "exact"});
-    let exact = finished(&app, &job).await;
+    let exact = app.succeeded(&job, FINISH).await;
     for r in exact["results"].as_array().unwrap() {
         let rho = r["fixation_probability"].as_f64().unwrap();
         for e in r["approximations"].as_array().unwrap() {

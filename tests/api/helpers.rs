@@ -115,6 +115,16 @@ impl TestApp {
         wait_finished(&self.client, &self.base, id, limit).await
     }
 
+    /// Posts `job` (expecting 202) and returns the run once it has succeeded.
+    pub async fn succeeded(&self, job: &Value, limit: Duration) -> Value {
+        let res = self.post_job(job).await;
+        assert_eq!(res.status(), 202);
+        let run: Value = res.json().await.expect("a JSON body");
+        let done = self.wait_finished(run["id"].as_str().unwrap(), limit).await;
+        assert_eq!(done["status"], "succeeded", "{done:#}");
+        done
+    }
+
     pub async fn stop(mut self) {
         if let Some(r) = self.running.take() {
             r.stop().await;

@@ -1,20 +1,11 @@
 //! What-if scenarios and plans through the service: stored and served as the run document's
 //! `interventions` and `plan`, reused byte for byte, and 422 pointers for bad members.
 
-use super::helpers::{ensemble_job, small_job, spawn_app, TestApp};
+use super::helpers::{ensemble_job, small_job, spawn_app};
 use serde_json::{json, Value};
 use std::time::Duration;
 
 const FINISH: Duration = Duration::from_secs(60);
-
-async fn finished(app: &TestApp, job: &Value) -> Value {
-    let res = app.post_job(job).await;
-    assert_eq!(res.status(), 202);
-    let run: Value = res.json().await.unwrap();
-    let done = app.wait_finished(run["id"].as_str().unwrap(), FINISH).await;
-    assert_eq!(done["status"], "succeeded", "{done:#}");
-    done
-}
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn interventions_and_plans_are_stored_served_and_reused() {
@@ -24,7 +15,7 @@ async fn interventions_and_plans_are_stored_served_and_reused() {
         {"name": "isolate-a", "changes": [{"action": "scale_out_of", "deme": "a", "factor": 0}]}
     ]);
     job["plan"] = json!({"budget": 0.2, "steps": 2});
-    let done = finished(&app, &job).await;
+    let done = app.succeeded(&job, FINISH).await;
     let rows = done["interventions"]
         .as_array()
         .expect("interventions served");
@@ -50,7 +41,7 @@ async fn interventions_and_plans_are_stored_served_and_reused() {
     );
     assert_eq!(again["plan"].to_string(), done["plan"].to_string());
     // Without them, neither member.
-    let plain = finished(&app, &small_job()).await;
+    let plain = app.succeeded(&small_job(), FINISH).await;
     assert!(plain.get("interventions").is_none() && plain.get("plan").is_none());
     app.stop().await;
 }
@@ -62,7 +53,7 @@ async fn an_ensemble_what_if_that_changes_nothing_gives_exactly_zero_change() {
     job["interventions"] = json!([
         {"name": "same", "changes": [{"action": "scale_link", "from": "x", "to": "y", "factor": 1}]}
     ]);
-    let done = finished(&app, &job).await;
+    let done = app.succeeded(&job, FINISH).await;
     for r in done["interventions"].as_array().unwrap() {
         assert_eq!(r["method"], "ensemble");
         assert_eq!(r["change_fixation_probability"], 0.0);

@@ -1,7 +1,7 @@
 //! Screening approximations through the service: approximation runs with their regimes and
 //! link rows, exact runs with discrepancies, and 422 pointers for bad `method.approximations`.
 
-use super::helpers::{small_job, spawn_app};
+use super::helpers::{error_pointers, small_job, spawn_app};
 use serde_json::{json, Value};
 use std::time::Duration;
 
@@ -74,12 +74,7 @@ async fn bad_approximation_names_are_422_problems_at_their_pointers() {
     let res = app.post_job(&job).await;
     assert_eq!(res.status(), 422);
     let doc: Value = res.json().await.unwrap();
-    let pointers: Vec<&str> = doc["errors"]
-        .as_array()
-        .unwrap()
-        .iter()
-        .map(|e| e["pointer"].as_str().unwrap())
-        .collect();
+    let pointers = error_pointers(&doc);
     assert_eq!(
         pointers,
         ["/method/approximations/1", "/method/approximations/2"],

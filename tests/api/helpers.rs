@@ -160,6 +160,16 @@ pub async fn wait_finished(
 }
 
 /// A small exact job (three demes, a few hundred states).
+/// The `pointer` of every entry of a problem document's `errors`, in order.
+pub fn error_pointers(doc: &Value) -> Vec<&str> {
+    doc["errors"]
+        .as_array()
+        .expect("an errors array")
+        .iter()
+        .map(|e| e["pointer"].as_str().expect("a pointer"))
+        .collect()
+}
+
 pub fn small_job() -> Value {
     json!({
         "series": "api-tests",

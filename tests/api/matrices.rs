@@ -1,7 +1,7 @@
 //! Stored matrices (`/v1/matrices`), jobs that name one with `matrix_ref`, and runs answered
 //! from an earlier run's results (`reused_from`).
 
-use super::helpers::{small_job, spawn_app, TestApp};
+use super::helpers::{error_pointers, small_job, spawn_app, TestApp};
 use serde_json::{json, Value};
 use std::time::Duration;
 
@@ -52,11 +52,9 @@ async fn pointers_of(res: reqwest::Response) -> Vec<String> {
     );
     let doc: Value = res.json().await.unwrap();
     assert_eq!(doc["status"], 422);
-    doc["errors"]
-        .as_array()
-        .unwrap()
-        .iter()
-        .map(|e| e["pointer"].as_str().unwrap().to_owned())
+    error_pointers(&doc)
+        .into_iter()
+        .map(str::to_owned)
         .collect()
 }
 

@@ -1,7 +1,7 @@
 //! What-if scenarios and plans through the service: stored and served as the run document's
 //! `interventions` and `plan`, reused byte for byte, and 422 pointers for bad members.
 
-use super::helpers::{ensemble_job, small_job, spawn_app};
+use super::helpers::{ensemble_job, error_pointers, small_job, spawn_app};
 use serde_json::{json, Value};
 use std::time::Duration;
 
@@ -86,12 +86,7 @@ async fn bad_interventions_and_plans_are_422_with_every_pointer_and_store_nothin
     let res = app.post_raw(job.to_string().into_bytes(), None).await;
     assert_eq!(res.status(), 422);
     let doc: Value = res.json().await.unwrap();
-    let pointers: Vec<&str> = doc["errors"]
-        .as_array()
-        .unwrap()
-        .iter()
-        .map(|e| e["pointer"].as_str().unwrap())
-        .collect();
+    let pointers = error_pointers(&doc);
     for want in [
         "/interventions/0/changes/0/to",
         "/interventions/0/changes/1/factor",

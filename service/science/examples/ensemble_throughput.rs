@@ -5,7 +5,10 @@
 
 use demefix_science::ensemble::{EnsembleConfig, EnsembleJob, Scheme};
 use demefix_science::{Model, Population, Rule, Scope, Start, StochasticMatrix};
+use fictional::{cpu_seconds, load_average};
 use std::time::Instant;
+
+mod fictional;
 
 /// A small deterministic generator for the test matrices (not the simulation's streams).
 struct Lcg(u64);
@@ -54,22 +57,6 @@ fn pool(threads: usize) -> rayon::ThreadPool {
         .expect("thread pool")
 }
 
-/// CPU seconds used by this process so far (user + system, from /proc; Linux clock ticks of
-/// 1/100 s), so that a busy machine does not understate the per-core rate.
-fn cpu_seconds() -> f64 {
-    let stat = std::fs::read_to_string("/proc/self/stat").unwrap_or_default();
-    let after = stat.rsplit_once(')').map_or("", |(_, rest)| rest);
-    let fields: Vec<&str> = after.split_whitespace().collect();
-    let ticks = |i: usize| {
-        fields
-            .get(i)
-            .and_then(|x| x.parse::<f64>().ok())
-            .unwrap_or(0.0)
-    };
-    // fields after the command name start at field 3 (state); utime = 14, stime = 15
-    (ticks(11) + ticks(12)) / 100.0
-}
-
 /// Runs `replicates` replicates on `threads` threads: (state changes, wall seconds, CPU
 /// seconds).
 fn measure(model: &Model, replicates: u64, threads: usize) -> (u128, f64, f64) {
@@ -98,12 +85,6 @@ fn measure(model: &Model, replicates: u64, threads: usize) -> (u128, f64, f64) {
 
 /// Demes, matrix kind, deme sizes, matrix rows, replicates.
 type Case = (usize, &'static str, Vec<u64>, Vec<Vec<f64>>, u64);
-
-fn load_average() -> String {
-    std::fs::read_to_string("/proc/loadavg")
-        .map(|s| s.split_whitespace().take(3).collect::<Vec<_>>().join(" "))
-        .unwrap_or_else(|_| "unknown".into())
-}
 
 fn main() {
     // arguments: deme counts to run (default all), `--div D` divides the replicate counts,

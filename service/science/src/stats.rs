@@ -1,6 +1,7 @@
 //! Binomial confidence intervals and sample quantiles used to summarise ensembles.
 //!
 //! * [`wilson`]: the Wilson score interval for `x` successes in `n` trials;
+//! * [`fixation_interval`]: an ensemble's 95% interval of a fixation probability;
 //! * [`clopper_pearson`]: the exact (Clopper-Pearson) interval from Beta quantiles;
 //! * [`quantile`]: linear interpolation between order statistics ("type 7").
 
@@ -35,6 +36,17 @@ pub fn wilson(x: u64, n: u64, z: f64) -> (f64, f64) {
         (centre + half).min(1.0)
     };
     (lower, upper)
+}
+
+/// The 95% interval every ensemble reports for a fixation probability from `fixed` fixing
+/// and `unresolved` unabsorbed replicates out of `n`: the Wilson lower bound of `fixed / n`
+/// and the Wilson upper bound of `(fixed + unresolved) / n` (an unresolved replicate may
+/// still fix).
+pub fn fixation_interval(fixed: u64, unresolved: u64, n: u64) -> (f64, f64) {
+    (
+        wilson(fixed, n, Z95).0,
+        wilson(fixed + unresolved, n, Z95).1,
+    )
 }
 
 /// Clopper-Pearson interval for `x` successes in `n` trials at level `1 - alpha`:

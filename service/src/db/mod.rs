@@ -114,6 +114,41 @@ fn millis(d: Duration) -> i64 {
     i64::try_from(d.as_millis()).unwrap_or(i64::MAX)
 }
 
+/// Extends the lease of run `id` held with `token` and records progress: `None` when the
+/// lease is lost (expired and taken, or the run is no longer running), otherwise whether
+/// cancellation was requested.
+async fn extend_lease(
+    conn: &mut sqlx::SqliteConnection,
+    id: &str,
+    token: &str,
+    lease: Duration,
+    done: u64,
+) -> Result<Option<bool>, DbError> {
+    let cancel: Option<i64> = sqlx::query_scalar(
+        "UPDATE runs
+         SET lease_expires_ms = ?1, heartbeat_at = ?2, progress_done = ?3
+         WHERE id = ?4 AND lease_token = ?5 AND status = 'running'
+         RETURNING cancel_requested",
+    )
+    .bind(now_ms().saturating_add(millis(lease)))
+    .bind(now_text())
+    .bind(done as i64)
+    .bind(id)
+    .bind(token)
+    .fetch_optional(conn)
+    .await?;
+    Ok(cancel.map(|c| c != 0))
+}
+
+/// Deletes the checkpoint log of run `id`.
+async fn delete_chunks(conn: &mut sqlx::SqliteConnection, id: &str) -> Result<(), DbError> {
+    sqlx::query("DELETE FROM run_chunks WHERE run_id = ?")
+        .bind(id)
+        .execute(conn)
+        .await?;
+    Ok(())
+}
+
 /// Inserts `matrix` unless its hash is stored already; returns whether it was new.
 async fn insert_matrix(
     tx: &mut sqlx::SqliteConnection,
@@ -383,10 +418,7 @@ impl Store {
                 .bind(id)
                 .execute(&mut *tx)
                 .await?;
-                sqlx::query("DELETE FROM run_chunks WHERE run_id = ?")
-                    .bind(id)
-                    .execute(&mut *tx)
-                    .await?;
+                delete_chunks(&mut tx, id).await?;
                 false
             }
             "running" => {
@@ -456,20 +488,7 @@ impl Store {
         step: &str,
     ) -> Result<Option<bool>, DbError> {
         let mut tx = self.writer.begin_with("BEGIN IMMEDIATE").await?;
-        let cancel: Option<i64> = sqlx::query_scalar(
-            "UPDATE runs
-             SET lease_expires_ms = ?1, heartbeat_at = ?2, progress_done = ?3
-             WHERE id = ?4 AND lease_token = ?5 AND status = 'running'
-             RETURNING cancel_requested",
-        )
-        .bind(now_ms().saturating_add(millis(lease)))
-        .bind(now_text())
-        .bind(done as i64)
-        .bind(id)
-        .bind(token)
-        .fetch_optional(&mut *tx)
-        .await?;
-        let Some(cancel) = cancel else {
+        let Some(cancel) = extend_lease(&mut tx, id, token, lease, done).await? else {
             tx.rollback().await?;
             return Ok(None);
         };
@@ -480,7 +499,7 @@ impl Store {
             .execute(&mut *tx)
             .await?;
         tx.commit().await?;
-        Ok(Some(cancel != 0))
+        Ok(Some(cancel))
     }
 
     /// Empties the checkpoint log of run `id` if `token` still holds its lease (the run's
@@ -495,10 +514,7 @@ impl Store {
         .fetch_optional(&mut *tx)
         .await?;
         if held.is_some() {
-            sqlx::query("DELETE FROM run_chunks WHERE run_id = ?")
-                .bind(id)
-                .execute(&mut *tx)
-                .await?;
+            delete_chunks(&mut tx, id).await?;
         }
         tx.commit().await?;
         Ok(held.is_some())
@@ -514,20 +530,8 @@ impl Store {
         lease: Duration,
         done: u64,
     ) -> Result<Option<bool>, DbError> {
-        let cancel: Option<i64> = sqlx::query_scalar(
-            "UPDATE runs
-             SET lease_expires_ms = ?1, heartbeat_at = ?2, progress_done = ?3
-             WHERE id = ?4 AND lease_token = ?5 AND status = 'running'
-             RETURNING cancel_requested",
-        )
-        .bind(now_ms().saturating_add(millis(lease)))
-        .bind(now_text())
-        .bind(done as i64)
-        .bind(id)
-        .bind(token)
-        .fetch_optional(&self.writer)
-        .await?;
-        Ok(cancel.map(|c| c != 0))
+        let mut conn = self.writer.acquire().await?;
+        extend_lease(&mut conn, id, token, lease, done).await
     }
 
     /// Ends run `id` as `finish` says, if `token` still holds its lease (fencing), and drops
@@ -592,10 +596,7 @@ impl Store {
         };
         let accepted = result.rows_affected() == 1;
         if accepted {
-            sqlx::query("DELETE FROM run_chunks WHERE run_id = ?")
-                .bind(id)
-                .execute(&mut *tx)
-                .await?;
+            delete_chunks(&mut tx, id).await?;
         }
         tx.commit().await?;
         Ok(accepted)

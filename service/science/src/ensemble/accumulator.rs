@@ -12,7 +12,7 @@
 
 use super::chain::{End, ReplicateOutcome};
 use super::{EnsembleSummary, StopReason, TimeQuantiles};
-use crate::stats::{quantile, wilson, Z95};
+use crate::stats::{fixation_interval, quantile};
 use serde::{Deserialize, Serialize};
 use std::collections::BTreeMap;
 
@@ -155,9 +155,7 @@ impl Accumulator {
     /// The reported 95% interval: Wilson lower bound of `fixed / n`, Wilson upper bound of
     /// `(fixed + unresolved) / n`.
     fn interval(&self) -> (f64, f64) {
-        let lo = wilson(self.fixed, self.next, Z95).0;
-        let hi = wilson(self.fixed + self.unresolved, self.next, Z95).1;
-        (lo, hi)
+        fixation_interval(self.fixed, self.unresolved, self.next)
     }
 
     fn push(&mut self, outcome: ReplicateOutcome) {

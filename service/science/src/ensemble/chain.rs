@@ -1220,6 +1220,25 @@ mod tests {
     use rand::SeedableRng;
     use rand_chacha::ChaCha8Rng;
 
+    /// A sparse 4-deme matrix, reducible in places.
+    fn sparse_four() -> Vec<Vec<f64>> {
+        vec![
+            vec![0.6, 0.4, 0.0, 0.0],
+            vec![0.0, 0.5, 0.5, 0.0],
+            vec![0.0, 0.0, 0.7, 0.3],
+            vec![0.2, 0.0, 0.0, 0.8],
+        ]
+    }
+
+    /// A dense asymmetric 3-deme matrix.
+    fn dense_three() -> Vec<Vec<f64>> {
+        vec![
+            vec![0.5, 0.3, 0.2],
+            vec![0.1, 0.6, 0.3],
+            vec![0.25, 0.25, 0.5],
+        ]
+    }
+
     fn model(rule: Rule, scope: Scope, sizes: Vec<u64>, rows: &[Vec<f64>], s: f64) -> Model {
         let pop = Population::new(sizes).unwrap();
         let k = StochasticMatrix::from_weights(rows).unwrap();
@@ -1327,17 +1346,7 @@ mod tests {
 
     #[test]
     fn small_path_rates_equal_the_model_along_random_trajectories() {
-        let sparse = vec![
-            vec![0.6, 0.4, 0.0, 0.0],
-            vec![0.0, 0.5, 0.5, 0.0],
-            vec![0.0, 0.0, 0.7, 0.3],
-            vec![0.2, 0.0, 0.0, 0.8],
-        ];
-        let dense = vec![
-            vec![0.5, 0.3, 0.2],
-            vec![0.1, 0.6, 0.3],
-            vec![0.25, 0.25, 0.5],
-        ];
+        let (sparse, dense) = (sparse_four(), dense_three());
         let mut seed = 101;
         for rule in [Rule::DeathBirth, Rule::BirthDeath] {
             for scope in [Scope::Deme, Scope::Neighbourhood] {
@@ -1353,18 +1362,7 @@ mod tests {
 
     #[test]
     fn incremental_rates_equal_the_model_along_random_trajectories() {
-        // a reducible-in-places sparse matrix and a dense asymmetric one
-        let sparse = vec![
-            vec![0.6, 0.4, 0.0, 0.0],
-            vec![0.0, 0.5, 0.5, 0.0],
-            vec![0.0, 0.0, 0.7, 0.3],
-            vec![0.2, 0.0, 0.0, 0.8],
-        ];
-        let dense = vec![
-            vec![0.5, 0.3, 0.2],
-            vec![0.1, 0.6, 0.3],
-            vec![0.25, 0.25, 0.5],
-        ];
+        let (sparse, dense) = (sparse_four(), dense_three());
         let mut seed = 1;
         for rule in [Rule::DeathBirth, Rule::BirthDeath] {
             for scope in [Scope::Deme, Scope::Neighbourhood] {
@@ -1383,12 +1381,7 @@ mod tests {
 
     #[test]
     fn wright_fisher_refill_equals_the_model_and_impossible_outcomes_are_exactly_zero() {
-        let rows = vec![
-            vec![0.6, 0.4, 0.0, 0.0],
-            vec![0.0, 0.5, 0.5, 0.0],
-            vec![0.0, 0.0, 0.7, 0.3],
-            vec![0.2, 0.0, 0.0, 0.8],
-        ];
+        let rows = sparse_four();
         let sizes = vec![3, 1, 4, 2];
         for scope in [Scope::Deme, Scope::Neighbourhood] {
             let model = model(Rule::WrightFisher, scope, sizes.clone(), &rows, 0.3);

@@ -29,7 +29,7 @@ use super::chain::{End, ReplicateOutcome};
 use super::{EnsembleConfig, EnsembleError, EnsembleJob};
 use crate::model::Model;
 use crate::start::Start;
-use crate::stats::{quantile, wilson, Z95};
+use crate::stats::{fixation_interval, quantile, wilson, Z95};
 use std::collections::BTreeMap;
 use std::sync::atomic::{AtomicBool, Ordering};
 
@@ -376,12 +376,7 @@ pub fn compare(
     };
     let lower = newcombe_paired(settle(true, false), Z95).0;
     let upper = newcombe_paired(settle(false, true), Z95).1;
-    let interval = |fixed: u64, unresolved: u64| {
-        (
-            wilson(fixed, n, Z95).0,
-            wilson(fixed + unresolved, n, Z95).1,
-        )
-    };
+    let interval = |fixed: u64, unresolved: u64| fixation_interval(fixed, unresolved, n);
     let arrival = (0..demes)
         .map(|deme| {
             (0..fractions)

@@ -19,7 +19,7 @@ use crate::ensemble::{End, EnsembleConfig, EnsembleJob, ReplicateOutcome};
 use crate::exact::{self, ExactConfig};
 use crate::model::Model;
 use crate::start::{combine, DemeAnswer, Start};
-use crate::stats::{wilson, Z95};
+use crate::stats::{fixation_interval, Z95};
 use sha2::{Digest, Sha256};
 use std::collections::BTreeMap;
 use std::sync::atomic::{AtomicBool, Ordering};
@@ -297,10 +297,7 @@ fn fixation_estimate(outcomes: &[ReplicateOutcome]) -> Estimate {
     let (fixed, unresolved) = (count(End::Fixed), count(End::Unresolved));
     Estimate {
         value: if n > 0 { fixed as f64 / n as f64 } else { 0.0 },
-        ci95: Some((
-            wilson(fixed, n, Z95).0,
-            wilson(fixed + unresolved, n, Z95).1,
-        )),
+        ci95: Some(fixation_interval(fixed, unresolved, n)),
     }
 }
 

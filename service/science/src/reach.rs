@@ -3,10 +3,10 @@
 
 use crate::model::{Model, Rule};
 
-/// For each deme `j`, the demes a lineage starting in `j` can never reach (empty when the
-/// migration graph is strongly connected). Offspring spread from `j` to `i` when
-/// `B[i][j] > 0` (death-birth, Wright-Fisher) or `F[j][i] > 0` (birth-death).
-pub fn unreachable_from_each(model: &Model) -> Vec<Vec<usize>> {
+/// `reach[j][i]`: whether a lineage starting in deme `j` can reach deme `i` (every deme
+/// reaches itself). Offspring spread from `j` to `i` when `B[i][j] > 0` (death-birth,
+/// Wright-Fisher) or `F[j][i] > 0` (birth-death).
+pub fn reachable_from_each(model: &Model) -> Vec<Vec<bool>> {
     let m = model.demes();
     let kernel = model.kernel();
     let successors = |j: usize| -> Vec<usize> {
@@ -29,7 +29,16 @@ pub fn unreachable_from_each(model: &Model) -> Vec<Vec<usize>> {
                     }
                 }
             }
-            (0..m).filter(|&i| !seen[i]).collect()
+            seen
         })
+        .collect()
+}
+
+/// For each deme `j`, the demes a lineage starting in `j` can never reach (empty when the
+/// migration graph is strongly connected; see [`reachable_from_each`]).
+pub fn unreachable_from_each(model: &Model) -> Vec<Vec<usize>> {
+    reachable_from_each(model)
+        .into_iter()
+        .map(|seen| (0..seen.len()).filter(|&i| !seen[i]).collect())
         .collect()
 }

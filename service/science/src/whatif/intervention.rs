@@ -356,29 +356,7 @@ pub struct StaysMixed {
 /// without fixing, as the model contract says).
 pub fn stays_mixed(model: &Model) -> Option<StaysMixed> {
     let m = model.demes();
-    let kernel = model.kernel();
-    let successors: Vec<Vec<usize>> = (0..m)
-        .map(|j| match model.rule() {
-            Rule::BirthDeath => kernel.row(j).map(|(i, _)| i).collect(),
-            Rule::DeathBirth | Rule::WrightFisher => kernel.col(j).map(|(i, _)| i).collect(),
-        })
-        .collect();
-    let reach: Vec<Vec<bool>> = (0..m)
-        .map(|start| {
-            let mut seen = vec![false; m];
-            let mut stack = vec![start];
-            seen[start] = true;
-            while let Some(j) = stack.pop() {
-                for &i in &successors[j] {
-                    if !seen[i] {
-                        seen[i] = true;
-                        stack.push(i);
-                    }
-                }
-            }
-            seen
-        })
-        .collect();
+    let reach = crate::reach::reachable_from_each(model);
     // A deme is in a source group when every deme reaching it is reached back; the group's
     // representative is its smallest deme.
     let representative: Vec<Option<usize>> = (0..m)

@@ -5,6 +5,7 @@
 
 mod api {
     mod approximations;
+    mod audit;
     pub mod helpers;
     mod matrices;
     mod queue;

@@ -42,6 +42,24 @@ enum Command {
     /// Start the service in this process with a fresh database, post the demo scenario
     /// (examples/ferry-islands-ensemble.json) for two update rules, and print the results.
     Demo(DemoArgs),
+    /// Work with the tamper-evident audit log of a database file.
+    #[command(subcommand)]
+    Audit(AuditCommand),
+}
+
+#[derive(Debug, Subcommand)]
+enum AuditCommand {
+    /// Recompute the audit chain of a database file offline (run it on a copy) and check every
+    /// entry against the records as stored. Prints the verdict as JSON; exit 0 when intact, 3
+    /// when an entry does not hold (the verdict names the first).
+    Verify(AuditVerifyArgs),
+}
+
+#[derive(Debug, Args)]
+struct AuditVerifyArgs {
+    /// The SQLite file (opened read-only; nothing is migrated or written).
+    #[arg(long, value_name = "PATH")]
+    db: std::path::PathBuf,
 }
 
 #[derive(Debug, Args)]
@@ -98,6 +116,8 @@ struct ValidateArgs {
 enum Failure {
     /// The job document is not acceptable: exit 2.
     Invalid(InvalidJob),
+    /// The audit chain does not hold: exit 3.
+    AuditBroken,
     /// Anything else: exit 1.
     Other(String),
 }
@@ -110,6 +130,13 @@ impl Failure {
                 let text = serde_json::to_string_pretty(&doc).unwrap_or_default();
                 let _ = writeln!(stderr, "{text}");
                 ExitCode::from(2)
+            }
+            Failure::AuditBroken => {
+                let _ = writeln!(
+                    stderr,
+                    "demefix: the audit log does not hold (see first_broken)"
+                );
+                ExitCode::from(3)
             }
             Failure::Other(message) => {
                 let _ = writeln!(stderr, "demefix: {message}");
@@ -127,6 +154,7 @@ pub fn main() -> ExitCode {
         Command::Validate(args) => validate(&args),
         Command::Serve => serve(),
         Command::Demo(args) => demo(&args),
+        Command::Audit(AuditCommand::Verify(args)) => audit_verify(&args),
     };
     match outcome {
         Ok(()) => ExitCode::SUCCESS,
@@ -145,6 +173,30 @@ fn serve() -> Result<(), Failure> {
     runtime
         .block_on(crate::server::serve(config))
         .map_err(|e| Failure::Other(e.to_string()))
+}
+
+fn audit_verify(args: &AuditVerifyArgs) -> Result<(), Failure> {
+    if !args.db.is_file() {
+        return Err(Failure::Other(format!(
+            "{} is not a database file",
+            args.db.display()
+        )));
+    }
+    let runtime = tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()
+        .map_err(|e| Failure::Other(format!("cannot start the async runtime: {e}")))?;
+    let verdict = runtime
+        .block_on(crate::db::verify_audit_file(&args.db))
+        .map_err(|e| Failure::Other(format!("{}: {e}", args.db.display())))?;
+    let text = serde_json::to_string_pretty(&verdict).unwrap_or_default();
+    let mut stdout = std::io::stdout().lock();
+    let _ = writeln!(stdout, "{text}");
+    if verdict.intact {
+        Ok(())
+    } else {
+        Err(Failure::AuditBroken)
+    }
 }
 
 fn demo(args: &DemoArgs) -> Result<(), Failure> {

@@ -11,10 +11,11 @@
 //! (statuses, submissions, the run document), [`db`] (the SQLite job store; the only module
 //! with SQL), [`worker`] (claims, leases, heartbeats, computation on the bounded pool),
 //! [`http`] (routes and problem documents; the only module with actix), [`server`] (start-up
-//! and the shutdown sequence). Dependencies point one way:
+//! and the shutdown sequence), [`audit`] (the rules of the hash-chained audit log). Dependencies point one way:
 //! `http -> domain -> {db, worker, compute} -> science`.
 #![forbid(unsafe_code)]
 
+pub mod audit;
 pub mod cli;
 pub mod compute;
 pub mod config;

@@ -65,6 +65,11 @@ pub async fn spawn_app() -> TestApp {
 }
 
 impl TestApp {
+    /// The service's SQLite file.
+    pub fn db_path(&self) -> PathBuf {
+        self._dir.0.join("demefix.db")
+    }
+
     pub fn url(&self, path: &str) -> String {
         format!("{}{path}", self.base)
     }
@@ -123,6 +128,13 @@ impl TestApp {
         let done = self.wait_finished(run["id"].as_str().unwrap(), limit).await;
         assert_eq!(done["status"], "succeeded", "{done:#}");
         done
+    }
+
+    /// Stops the service but keeps its files (until `self` is dropped).
+    pub async fn stop_keeping_files(&mut self) {
+        if let Some(r) = self.running.take() {
+            r.stop().await;
+        }
     }
 
     pub async fn stop(mut self) {

@@ -9,6 +9,8 @@
 //! append-only log of ensemble chunks,
 //! completion fenced by the lease token, requeue on shutdown, rescue of expired leases by
 //! the claim itself), cancellation, and the read side (one run, a page of runs, a matrix).
+//! Every state change appends its audit entry (`db/audit.rs`) in the transaction that made
+//! it, so the log and the records never disagree about what happened.
 //!
 //! Every read-then-write transaction starts with `BEGIN IMMEDIATE`, so it takes the write
 //! lock before reading and never fails half-way with `SQLITE_BUSY_SNAPSHOT`. Single-statement
@@ -16,14 +18,19 @@
 //! across a computation. Statements are checked at run time (`sqlx::query`), so building
 //! needs no database.
 
+mod audit;
 mod rows;
 mod stats;
+
+pub use audit::verify_file as verify_audit_file;
 
 pub use rows::{Claim, MatrixRecord, RunRecord};
 pub use stats::RunCounts;
 
+use crate::audit::{Entry, EventKind, Verdict};
 use crate::domain::{self, Finish, ListQuery, NewMatrix, NewRun, RunStatus};
 use rows::{ClaimRow, MatrixRow, ReusableRow, RunRow, MATRIX_COLUMNS, RUN_COLUMNS};
+use serde_json::json;
 use sqlx::sqlite::{
     SqliteConnectOptions, SqliteJournalMode, SqlitePool, SqlitePoolOptions, SqliteSynchronous,
 };
@@ -165,7 +172,18 @@ async fn insert_matrix(
     .bind(now)
     .execute(&mut *tx)
     .await?;
-    Ok(result.rows_affected() == 1)
+    let created = result.rows_affected() == 1;
+    if created {
+        audit::append(
+            tx,
+            now,
+            EventKind::MatrixStored,
+            None,
+            json!({ "matrix_sha256": matrix.sha256 }),
+        )
+        .await?;
+    }
+    Ok(created)
 }
 
 impl Store {
@@ -310,6 +328,18 @@ impl Store {
         .bind(reuse.as_ref().and_then(|r| r.whatif.as_ref()))
         .execute(&mut *tx)
         .await?;
+        let members = json!({ "run_id": new.id });
+        audit::append(
+            &mut tx,
+            &now,
+            EventKind::Submitted,
+            Some(&new.id),
+            members.clone(),
+        )
+        .await?;
+        if reuse.is_some() {
+            audit::append(&mut tx, &now, EventKind::Finished, Some(&new.id), members).await?;
+        }
         tx.commit().await?;
         let run = self.run(&new.id).await?.ok_or_else(|| DbError::Corrupt {
             id: new.id.clone(),
@@ -408,24 +438,34 @@ impl Store {
             tx.rollback().await?;
             return Ok(Cancelled::NotFound);
         };
+        let now = now_text();
+        let members = json!({ "run_id": id });
         let finished = match status.as_str() {
             "queued" => {
                 sqlx::query(
                     "UPDATE runs SET status = 'cancelled', cancel_requested = 1, finished_at = ?
                      WHERE id = ?",
                 )
-                .bind(now_text())
+                .bind(&now)
                 .bind(id)
                 .execute(&mut *tx)
                 .await?;
                 delete_chunks(&mut tx, id).await?;
+                audit::append(&mut tx, &now, EventKind::Finished, Some(id), members).await?;
                 false
             }
             "running" => {
-                sqlx::query("UPDATE runs SET cancel_requested = 1 WHERE id = ?")
-                    .bind(id)
-                    .execute(&mut *tx)
-                    .await?;
+                let first: Option<i64> = sqlx::query_scalar(
+                    "UPDATE runs SET cancel_requested = 1 WHERE id = ? AND cancel_requested = 0
+                     RETURNING 1",
+                )
+                .bind(id)
+                .fetch_optional(&mut *tx)
+                .await?;
+                if first.is_some() {
+                    audit::append(&mut tx, &now, EventKind::CancelRequested, Some(id), members)
+                        .await?;
+                }
                 false
             }
             "cancelled" => false,
@@ -448,6 +488,8 @@ impl Store {
     /// the previous holder can no longer complete it.
     pub async fn claim(&self, token: &str, lease: Duration) -> Result<Option<Claim>, DbError> {
         let now = now_ms();
+        let at = now_text();
+        let mut tx = self.writer.begin_with("BEGIN IMMEDIATE").await?;
         let row: Option<ClaimRow> = sqlx::query_as(
             "UPDATE runs
              SET status = 'running', lease_token = ?1, lease_expires_ms = ?2, heartbeat_at = ?3,
@@ -460,18 +502,28 @@ impl Store {
         )
         .bind(token)
         .bind(now.saturating_add(millis(lease)))
-        .bind(now_text())
+        .bind(&at)
         .bind(now)
-        .fetch_optional(&self.writer)
+        .fetch_optional(&mut *tx)
         .await?;
         let Some(row) = row else {
+            tx.rollback().await?;
             return Ok(None);
         };
         let steps: Vec<String> =
             sqlx::query_scalar("SELECT step FROM run_chunks WHERE run_id = ? ORDER BY seq")
                 .bind(row.id())
-                .fetch_all(&self.writer)
+                .fetch_all(&mut *tx)
                 .await?;
+        audit::append(
+            &mut tx,
+            &at,
+            EventKind::Started,
+            Some(row.id()),
+            json!({ "run_id": row.id(), "attempt": row.attempts(), "resumed_chunks": steps.len() }),
+        )
+        .await?;
+        tx.commit().await?;
         Ok(Some(row.into_claim(steps)))
     }
 
@@ -498,6 +550,19 @@ impl Store {
             .bind(step)
             .execute(&mut *tx)
             .await?;
+        audit::append(
+            &mut tx,
+            &now_text(),
+            EventKind::ChunkCommitted,
+            Some(id),
+            json!({
+                "run_id": id,
+                "seq": seq,
+                "done": done,
+                "step_sha256": crate::provenance::sha256_hex(step.as_bytes()),
+            }),
+        )
+        .await?;
         tx.commit().await?;
         Ok(Some(cancel))
     }
@@ -515,6 +580,14 @@ impl Store {
         .await?;
         if held.is_some() {
             delete_chunks(&mut tx, id).await?;
+            audit::append(
+                &mut tx,
+                &now_text(),
+                EventKind::ChunksDiscarded,
+                Some(id),
+                json!({ "run_id": id }),
+            )
+            .await?;
         }
         tx.commit().await?;
         Ok(held.is_some())
@@ -597,6 +670,14 @@ impl Store {
         let accepted = result.rows_affected() == 1;
         if accepted {
             delete_chunks(&mut tx, id).await?;
+            audit::append(
+                &mut tx,
+                &now,
+                EventKind::Finished,
+                Some(id),
+                json!({ "run_id": id }),
+            )
+            .await?;
         }
         tx.commit().await?;
         Ok(accepted)
@@ -605,15 +686,38 @@ impl Store {
     /// Puts run `id` back in the queue (shutdown), keeping its checkpoint log, if `token` still
     /// holds its lease.
     pub async fn requeue(&self, id: &str, token: &str) -> Result<bool, DbError> {
+        let mut tx = self.writer.begin_with("BEGIN IMMEDIATE").await?;
         let result = sqlx::query(
             "UPDATE runs SET status = 'queued', lease_token = NULL, lease_expires_ms = NULL
              WHERE id = ? AND lease_token = ? AND status = 'running'",
         )
         .bind(id)
         .bind(token)
-        .execute(&self.writer)
+        .execute(&mut *tx)
         .await?;
-        Ok(result.rows_affected() == 1)
+        let requeued = result.rows_affected() == 1;
+        if requeued {
+            audit::append(
+                &mut tx,
+                &now_text(),
+                EventKind::Requeued,
+                Some(id),
+                json!({ "run_id": id }),
+            )
+            .await?;
+        }
+        tx.commit().await?;
+        Ok(requeued)
+    }
+
+    /// Up to `limit` audit entries after position `after`, in order.
+    pub async fn audit_page(&self, after: u64, limit: u32) -> Result<Vec<Entry>, DbError> {
+        audit::page(&self.reader, after, limit).await
+    }
+
+    /// Checks the whole audit chain against the records as stored now.
+    pub async fn verify_audit(&self) -> Result<Verdict, DbError> {
+        audit::verify(&self.reader).await
     }
 
     /// Checks that the database takes the write lock (for `/readyz`).

@@ -133,6 +133,10 @@ pub struct Claim {
 }
 
 impl ClaimRow {
+    pub(super) fn attempts(&self) -> i64 {
+        self.attempts
+    }
+
     pub(super) fn id(&self) -> &str {
         &self.id
     }

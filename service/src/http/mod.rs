@@ -4,6 +4,7 @@
 //! Handlers are thin: they read the request, call one named step of the store or of
 //! [`crate::domain`], and shape the answer. Errors become problem documents in [`error`].
 
+mod audit;
 pub mod error;
 mod matrices;
 mod runs;
@@ -31,6 +32,8 @@ pub const ROUTES: &[(&str, &str)] = &[
     ("POST", "/v1/runs/{id}/cancel"),
     ("POST", "/v1/matrices"),
     ("GET", "/v1/matrices/{sha256}"),
+    ("GET", "/v1/audit"),
+    ("GET", "/v1/audit/verify"),
     ("GET", "/healthz"),
     ("GET", "/readyz"),
     ("GET", "/metrics"),
@@ -63,6 +66,8 @@ pub fn routes(cfg: &mut web::ServiceConfig) {
     .service(web::resource("/v1/runs/{id}/cancel").route(web::post().to(runs::cancel)))
     .service(web::resource("/v1/matrices").route(web::post().to(matrices::create)))
     .service(web::resource("/v1/matrices/{sha256}").route(web::get().to(matrices::get)))
+    .service(web::resource("/v1/audit").route(web::get().to(audit::page)))
+    .service(web::resource("/v1/audit/verify").route(web::get().to(audit::verify)))
     .service(web::resource("/healthz").route(web::get().to(healthz)))
     .service(web::resource("/readyz").route(web::get().to(readyz)))
     .service(web::resource("/metrics").route(web::get().to(metrics_text)))

@@ -11,7 +11,8 @@
 //! (statuses, submissions, the run document), [`db`] (the SQLite job store; the only module
 //! with SQL), [`worker`] (claims, leases, heartbeats, computation on the bounded pool),
 //! [`http`] (routes and problem documents; the only module with actix), [`server`] (start-up
-//! and the shutdown sequence), [`audit`] (the rules of the hash-chained audit log). Dependencies point one way:
+//! and the shutdown sequence), [`audit`] (the rules of the hash-chained audit log), [`prov`]
+//! (the W3C PROV-JSON export of a run). Dependencies point one way:
 //! `http -> domain -> {db, worker, compute} -> science`.
 #![forbid(unsafe_code)]
 
@@ -25,6 +26,7 @@ pub mod document;
 pub mod domain;
 pub mod http;
 pub mod problem;
+pub mod prov;
 pub mod provenance;
 pub mod server;
 pub mod spec;

@@ -183,3 +183,68 @@ async fn every_state_change_is_chained_and_an_edited_result_names_its_entry() {
     assert_eq!(code, 3, "{verdict:#}");
     assert_eq!(verdict["first_broken"]["seq"], seq + 1, "{verdict:#}");
 }
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_succeeded_run_exports_w3c_prov_json_naming_recomputable_hashes() {
+    let app = spawn_app().await;
+    let run = app.succeeded(&small_job(), FINISH).await;
+    let id = run["id"].as_str().unwrap();
+    let res = app.get(&format!("/v1/runs/{id}/provenance")).await;
+    assert_eq!(res.status(), 200);
+    let prov: Value = res.json().await.unwrap();
+    let p = &run["provenance"];
+    let spec = format!("demefix:spec-{}", p["spec_sha256"].as_str().unwrap());
+    let matrix = format!("demefix:matrix-{}", p["matrix_sha256"].as_str().unwrap());
+    let activity = format!("demefix:run-{id}");
+    assert_eq!(prov["entity"][&spec]["demefix:seed"], p["seed"]);
+    assert!(prov["entity"][&matrix].is_object(), "{prov:#}");
+    assert_eq!(prov["used"]["_:used-spec"]["prov:entity"], spec.as_str());
+    assert_eq!(
+        prov["used"]["_:used-matrix"]["prov:activity"],
+        activity.as_str()
+    );
+    let result = prov["wasGeneratedBy"]["_:generated-result"]["prov:entity"]
+        .as_str()
+        .unwrap()
+        .to_owned();
+    assert!(prov["entity"][&result]["demefix:results_sha256"].is_string());
+    assert_eq!(
+        prov["activity"][&activity]["prov:endTime"], run["finished_at"],
+        "{prov:#}"
+    );
+    let agent = prov["wasAssociatedWith"]["_:associated"]["prov:agent"]
+        .as_str()
+        .unwrap();
+    assert_eq!(prov["agent"][agent]["prov:type"]["$"], "prov:SoftwareAgent");
+
+    // The results hash is the one the audit log's `finished` entry vouches for.
+    let entries = app.get_json("/v1/audit?limit=1000").await;
+    let finished = entries["entries"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|e| e["run_id"] == id && e["kind"] == "finished")
+        .unwrap();
+    let content: Value = serde_json::from_str(finished["content"].as_str().unwrap()).unwrap();
+    assert_eq!(
+        content["facts"]["results_sha256"],
+        prov["entity"][&result]["demefix:results_sha256"]
+    );
+
+    let unknown = app
+        .get("/v1/runs/01890000-0000-7000-8000-000000000000/provenance")
+        .await;
+    assert_eq!(unknown.status(), 404);
+    let queued = app
+        .post_job(&super::helpers::ensemble_job(5_000_000, 1000))
+        .await;
+    let queued: Value = queued.json().await.unwrap();
+    let early = app
+        .get(&format!(
+            "/v1/runs/{}/provenance",
+            queued["id"].as_str().unwrap()
+        ))
+        .await;
+    assert_eq!(early.status(), 409);
+    app.stop().await;
+}

@@ -30,6 +30,7 @@ pub const ROUTES: &[(&str, &str)] = &[
     ("GET", "/v1/runs"),
     ("GET", "/v1/runs/{id}"),
     ("POST", "/v1/runs/{id}/cancel"),
+    ("GET", "/v1/runs/{id}/provenance"),
     ("POST", "/v1/matrices"),
     ("GET", "/v1/matrices/{sha256}"),
     ("GET", "/v1/audit"),
@@ -64,6 +65,7 @@ pub fn routes(cfg: &mut web::ServiceConfig) {
     )
     .service(web::resource("/v1/runs/{id}").route(web::get().to(runs::get)))
     .service(web::resource("/v1/runs/{id}/cancel").route(web::post().to(runs::cancel)))
+    .service(web::resource("/v1/runs/{id}/provenance").route(web::get().to(runs::provenance)))
     .service(web::resource("/v1/matrices").route(web::post().to(matrices::create)))
     .service(web::resource("/v1/matrices/{sha256}").route(web::get().to(matrices::get)))
     .service(web::resource("/v1/audit").route(web::get().to(audit::page)))

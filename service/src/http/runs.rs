@@ -152,6 +152,20 @@ async fn find(state: &AppState, id: &str) -> Result<RunRecord, ApiError> {
         .ok_or_else(|| ApiError::NotFound(format!("no run has the id `{id}`")))
 }
 
+/// `GET /v1/runs/{id}/provenance`: the W3C PROV-JSON document of a succeeded run
+/// ([`crate::prov`]); `409` before it has succeeded.
+pub async fn provenance(
+    state: web::Data<AppState>,
+    id: web::Path<String>,
+) -> Result<HttpResponse, ApiError> {
+    let run = find(&state, &id).await?;
+    let doc = crate::prov::document(&run).map_err(|e| match e {
+        crate::prov::ProvError::NotSucceeded(_) => ApiError::Conflict(e.to_string()),
+        crate::prov::ProvError::Unreadable(_) => ApiError::internal(e),
+    })?;
+    Ok(HttpResponse::Ok().json(doc))
+}
+
 /// `GET /v1/runs/{id}`: strong `ETag` (and `304` on `If-None-Match`) once finished.
 pub async fn get(
     state: web::Data<AppState>,

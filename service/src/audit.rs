@@ -42,11 +42,13 @@ pub enum EventKind {
     Requeued,
     /// A run ended: succeeded, failed or cancelled.
     Finished,
+    /// A re-verification ended (its check run finished); the entry's run is the original.
+    Verified,
 }
 
 impl EventKind {
     /// Every kind.
-    pub const ALL: [EventKind; 8] = [
+    pub const ALL: [EventKind; 9] = [
         EventKind::MatrixStored,
         EventKind::Submitted,
         EventKind::Started,
@@ -55,6 +57,7 @@ impl EventKind {
         EventKind::CancelRequested,
         EventKind::Requeued,
         EventKind::Finished,
+        EventKind::Verified,
     ];
 
     /// The stored and served name.
@@ -68,6 +71,7 @@ impl EventKind {
             EventKind::CancelRequested => "cancel_requested",
             EventKind::Requeued => "requeued",
             EventKind::Finished => "finished",
+            EventKind::Verified => "verified",
         }
     }
 
@@ -82,6 +86,7 @@ impl EventKind {
             EventKind::MatrixStored => Some(Witness::Matrix),
             EventKind::Submitted => Some(Witness::Submission),
             EventKind::Finished => Some(Witness::Outcome),
+            EventKind::Verified => Some(Witness::Verification),
             _ => None,
         }
     }
@@ -96,6 +101,8 @@ pub enum Witness {
     Submission,
     /// The run's fields fixed when it ended: [`outcome_facts`].
     Outcome,
+    /// The verification named by the content's `check_run_id`: [`verification_facts`].
+    Verification,
 }
 
 /// One entry of the log, as stored and served.
@@ -246,6 +253,15 @@ pub fn outcome_facts(run: &RunFields) -> Value {
         "error_sha256": hash_of(run.error.as_deref()),
         "finished_at": run.finished_at,
     })
+}
+
+/// The fields of a finished verification, as stored.
+pub fn verification_facts(row: &Value) -> Value {
+    let mut facts = row.clone();
+    if let Some(text) = row.get("differences").and_then(Value::as_str) {
+        facts["differences"] = Value::String(sha256_hex(text.as_bytes()));
+    }
+    facts
 }
 
 /// The fields of a stored matrix.

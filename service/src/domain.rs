@@ -18,7 +18,7 @@
 //! then a note naming the earlier run.
 
 use crate::db::{DbError, MatrixRecord, Store};
-use crate::problem::{InvalidJob, Problem};
+use crate::problem::{InvalidJob, Pointer, Problem};
 use crate::provenance::{matrix_sha256, sha256_hex, spec_sha256};
 use crate::spec::{self, FetchedMatrix, Limits, MatrixRefs, NoStoredMatrices};
 use serde::Serialize;
@@ -102,6 +102,8 @@ pub struct NewRun {
     pub method_version: String,
     /// Whether a succeeded run with the same spec and method version may answer this one.
     pub allow_reuse: bool,
+    /// The succeeded run this run recomputes (a re-verification), if any.
+    pub verifies: Option<String>,
 }
 
 /// A matrix ready to store, content-addressed by its canonical hash (`api.md`).
@@ -244,7 +246,35 @@ pub fn prepare_document(
         idempotency_key,
         method_version: demefix_science::METHOD_VERSION.to_owned(),
         allow_reuse: true,
+        verifies: None,
     })
+}
+
+/// The check run that re-verifies run `original_id` from its stored spec (which carries the
+/// recorded seed and method): never answered by reuse, in no series. `None` when the stored
+/// spec no longer validates: its problems.
+pub fn prepare_verification(
+    original_id: &str,
+    stored_spec: &str,
+    limits: &Limits,
+) -> Result<NewRun, InvalidJob> {
+    let doc: serde_json::Value = serde_json::from_str(stored_spec).map_err(|e| {
+        InvalidJob::new(vec![Problem::new(
+            &Pointer::root(),
+            format!("the stored spec of run {original_id} is not JSON: {e}"),
+        )])
+    })?;
+    let mut new = prepare_document(
+        &doc,
+        stored_spec.as_bytes(),
+        None,
+        limits,
+        &NoStoredMatrices,
+    )?;
+    new.allow_reuse = false;
+    new.series = None;
+    new.verifies = Some(original_id.to_owned());
+    Ok(new)
 }
 
 /// The `type` of the problem document of a rejected matrix.

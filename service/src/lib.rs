@@ -12,7 +12,8 @@
 //! with SQL), [`worker`] (claims, leases, heartbeats, computation on the bounded pool),
 //! [`http`] (routes and problem documents; the only module with actix), [`server`] (start-up
 //! and the shutdown sequence), [`audit`] (the rules of the hash-chained audit log), [`prov`]
-//! (the W3C PROV-JSON export of a run). Dependencies point one way:
+//! (the W3C PROV-JSON export of a run), [`verification`] (what a re-verification
+//! compares). Dependencies point one way:
 //! `http -> domain -> {db, worker, compute} -> science`.
 #![forbid(unsafe_code)]
 
@@ -30,5 +31,6 @@ pub mod prov;
 pub mod provenance;
 pub mod server;
 pub mod spec;
+pub mod verification;
 pub mod whatif;
 pub mod worker;

@@ -109,6 +109,10 @@ fn witness_key(witness: Witness, run_id: Option<&str>, members: &Value) -> Optio
             .and_then(Value::as_str)
             .map(str::to_owned),
         Witness::Submission | Witness::Outcome => run_id.map(str::to_owned),
+        Witness::Verification => members
+            .get("check_run_id")
+            .and_then(Value::as_str)
+            .map(str::to_owned),
     }
 }
 
@@ -136,6 +140,18 @@ async fn current(
                     &r.try_get::<String, _>(1)?,
                     &r.try_get::<String, _>(2)?,
                 )),
+            })
+        }
+        Witness::Verification => {
+            let row = sqlx::query(&format!(
+                "SELECT {VERIFICATION_COLUMNS} FROM verifications WHERE check_run_id = ?"
+            ))
+            .bind(key)
+            .fetch_optional(&mut *conn)
+            .await?;
+            Ok(match row {
+                None => Current::Missing,
+                Some(r) => Current::Facts(audit::verification_facts(&verification_json(&r)?)),
             })
         }
         Witness::Submission | Witness::Outcome => {
@@ -175,6 +191,27 @@ async fn current(
             }))
         }
     }
+}
+
+/// Columns of a verification row, in `SELECT` form.
+pub(super) const VERIFICATION_COLUMNS: &str = "check_run_id, run_id, requested_at, \
+    recorded_method_version, current_method_version, original_result_sha256, outcome, \
+    recomputed_result_sha256, differences, more_differences, finished_at";
+
+/// A verification row as a JSON object (column names as members, stored text as is).
+pub(super) fn verification_json(r: &sqlx::sqlite::SqliteRow) -> Result<Value, DbError> {
+    let mut object = serde_json::Map::new();
+    for name in VERIFICATION_COLUMNS.split(", ") {
+        let value = if name == "more_differences" {
+            r.try_get::<Option<i64>, _>(name)?
+                .map_or(Value::Null, |v| Value::Bool(v != 0))
+        } else {
+            r.try_get::<Option<String>, _>(name)?
+                .map_or(Value::Null, Value::String)
+        };
+        object.insert(name.to_owned(), value);
+    }
+    Ok(Value::Object(object))
 }
 
 /// Up to `limit` entries after position `after`, in order.

@@ -21,11 +21,13 @@
 mod audit;
 mod rows;
 mod stats;
+mod verification;
 
 pub use audit::verify_file as verify_audit_file;
 
 pub use rows::{Claim, MatrixRecord, RunRecord};
 pub use stats::RunCounts;
+pub use verification::VerificationRecord;
 
 use crate::audit::{Entry, EventKind, Verdict};
 use crate::domain::{self, Finish, ListQuery, NewMatrix, NewRun, RunStatus};
@@ -298,12 +300,13 @@ impl Store {
             "INSERT INTO runs (id, status, series, spec, spec_sha256, request, request_sha256,
                                matrix_sha256, warnings, progress_total, submitted_at,
                                idempotency_key, provenance, results, progress_done,
-                               started_at, finished_at, reused_from, sensitivity, whatif)
+                               started_at, finished_at, reused_from, sensitivity, whatif,
+                               verifies)
              VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14,
                      CASE WHEN ?15 IS NULL THEN 0 ELSE ?10 END,
                      CASE WHEN ?15 IS NULL THEN NULL ELSE ?11 END,
                      CASE WHEN ?15 IS NULL THEN NULL ELSE ?11 END,
-                     ?15, ?16, ?17)",
+                     ?15, ?16, ?17, ?18)",
         )
         .bind(&new.id)
         .bind(if reuse.is_some() {
@@ -326,8 +329,12 @@ impl Store {
         .bind(reuse.as_ref().map(|r| &r.reused_from))
         .bind(reuse.as_ref().and_then(|r| r.sensitivity.as_ref()))
         .bind(reuse.as_ref().and_then(|r| r.whatif.as_ref()))
+        .bind(&new.verifies)
         .execute(&mut *tx)
         .await?;
+        if let Some(original) = &new.verifies {
+            verification::open(&mut tx, original, &new.id, &new.method_version, &now).await?;
+        }
         let members = json!({ "run_id": new.id });
         audit::append(
             &mut tx,
@@ -452,6 +459,7 @@ impl Store {
                 .await?;
                 delete_chunks(&mut tx, id).await?;
                 audit::append(&mut tx, &now, EventKind::Finished, Some(id), members).await?;
+                verification::close(&mut tx, id, &now).await?;
                 false
             }
             "running" => {
@@ -678,6 +686,7 @@ impl Store {
                 json!({ "run_id": id }),
             )
             .await?;
+            verification::close(&mut tx, id, &now).await?;
         }
         tx.commit().await?;
         Ok(accepted)

@@ -8,6 +8,7 @@ mod audit;
 pub mod error;
 mod matrices;
 mod runs;
+mod verifications;
 
 use crate::config::Config;
 use crate::db::Store;
@@ -31,6 +32,9 @@ pub const ROUTES: &[(&str, &str)] = &[
     ("GET", "/v1/runs/{id}"),
     ("POST", "/v1/runs/{id}/cancel"),
     ("GET", "/v1/runs/{id}/provenance"),
+    ("POST", "/v1/runs/{id}/verify"),
+    ("GET", "/v1/runs/{id}/verifications"),
+    ("GET", "/v1/verifications/{id}"),
     ("POST", "/v1/matrices"),
     ("GET", "/v1/matrices/{sha256}"),
     ("GET", "/v1/audit"),
@@ -66,6 +70,11 @@ pub fn routes(cfg: &mut web::ServiceConfig) {
     .service(web::resource("/v1/runs/{id}").route(web::get().to(runs::get)))
     .service(web::resource("/v1/runs/{id}/cancel").route(web::post().to(runs::cancel)))
     .service(web::resource("/v1/runs/{id}/provenance").route(web::get().to(runs::provenance)))
+    .service(web::resource("/v1/runs/{id}/verify").route(web::post().to(verifications::request)))
+    .service(
+        web::resource("/v1/runs/{id}/verifications").route(web::get().to(verifications::of_run)),
+    )
+    .service(web::resource("/v1/verifications/{id}").route(web::get().to(verifications::one)))
     .service(web::resource("/v1/matrices").route(web::post().to(matrices::create)))
     .service(web::resource("/v1/matrices/{sha256}").route(web::get().to(matrices::get)))
     .service(web::resource("/v1/audit").route(web::get().to(audit::page)))

@@ -136,13 +136,13 @@ pub async fn create(
     Ok(response.body(document(&run)?))
 }
 
-fn parse_id(id: &str) -> Result<String, ApiError> {
+pub(super) fn parse_id(id: &str) -> Result<String, ApiError> {
     uuid::Uuid::parse_str(id)
         .map(|u| u.hyphenated().to_string())
         .map_err(|_| ApiError::NotFound(format!("no run has the id `{id}`")))
 }
 
-async fn find(state: &AppState, id: &str) -> Result<RunRecord, ApiError> {
+pub(super) async fn find(state: &AppState, id: &str) -> Result<RunRecord, ApiError> {
     let id = parse_id(id)?;
     state
         .store

@@ -9,6 +9,7 @@ mod api {
     pub mod helpers;
     mod matrices;
     mod queue;
+    mod series;
     mod verify;
     mod whatif;
 }

@@ -13,11 +13,12 @@
 //! [`http`] (routes and problem documents; the only module with actix), [`server`] (start-up
 //! and the shutdown sequence), [`audit`] (the rules of the hash-chained audit log), [`prov`]
 //! (the W3C PROV-JSON export of a run), [`verification`] (what a re-verification
-//! compares). Dependencies point one way:
+//! compares), [`changes`] (the change report between two runs of a series). Dependencies point one way:
 //! `http -> domain -> {db, worker, compute} -> science`.
 #![forbid(unsafe_code)]
 
 pub mod audit;
+pub mod changes;
 pub mod cli;
 pub mod compute;
 pub mod config;

@@ -20,12 +20,14 @@
 
 mod audit;
 mod rows;
+mod series;
 mod stats;
 mod verification;
 
 pub use audit::verify_file as verify_audit_file;
 
 pub use rows::{Claim, MatrixRecord, RunRecord};
+pub use series::{SeriesRun, SeriesSummary};
 pub use stats::RunCounts;
 pub use verification::VerificationRecord;
 

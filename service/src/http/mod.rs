@@ -8,6 +8,7 @@ mod audit;
 pub mod error;
 mod matrices;
 mod runs;
+mod series;
 mod verifications;
 
 use crate::config::Config;
@@ -37,6 +38,9 @@ pub const ROUTES: &[(&str, &str)] = &[
     ("GET", "/v1/verifications/{id}"),
     ("POST", "/v1/matrices"),
     ("GET", "/v1/matrices/{sha256}"),
+    ("GET", "/v1/series"),
+    ("GET", "/v1/series/{name}"),
+    ("GET", "/v1/series/{name}/changes"),
     ("GET", "/v1/audit"),
     ("GET", "/v1/audit/verify"),
     ("GET", "/healthz"),
@@ -77,6 +81,9 @@ pub fn routes(cfg: &mut web::ServiceConfig) {
     .service(web::resource("/v1/verifications/{id}").route(web::get().to(verifications::one)))
     .service(web::resource("/v1/matrices").route(web::post().to(matrices::create)))
     .service(web::resource("/v1/matrices/{sha256}").route(web::get().to(matrices::get)))
+    .service(web::resource("/v1/series").route(web::get().to(series::list)))
+    .service(web::resource("/v1/series/{name}").route(web::get().to(series::one)))
+    .service(web::resource("/v1/series/{name}/changes").route(web::get().to(series::changes)))
     .service(web::resource("/v1/audit").route(web::get().to(audit::page)))
     .service(web::resource("/v1/audit/verify").route(web::get().to(audit::verify)))
     .service(web::resource("/healthz").route(web::get().to(healthz)))

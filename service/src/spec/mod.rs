@@ -63,6 +63,7 @@ pub const MAX_SWEEP: usize = 1_000;
 const TOP_FIELDS: &[&str] = &[
     "label",
     "series",
+    "as_of",
     "population",
     "migration",
     "dynamics",
@@ -214,6 +215,9 @@ pub struct JobSpec {
     /// Id of a series of related jobs.
     #[serde(skip_serializing_if = "Option::is_none")]
     pub series: Option<String>,
+    /// The date (`YYYY-MM-DD`) the job's data describe, within its series.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub as_of: Option<String>,
     /// Demes and sizes.
     pub population: PopulationSpec,
     /// Migration matrix.
@@ -509,6 +513,20 @@ pub fn validate_with(
             None
         }
     });
+    let as_of = top.get("as_of").and_then(|v| {
+        let at = root.key("as_of");
+        let s = w.string(v, &at)?;
+        if top.get("series").is_none() {
+            w.report(&at, "needs `series`: a date places a job within its series");
+        }
+        match chrono::NaiveDate::parse_from_str(s, "%Y-%m-%d") {
+            Ok(d) if d.format("%Y-%m-%d").to_string() == s => Some(s.to_owned()),
+            _ => {
+                w.report(&at, "must be a calendar date YYYY-MM-DD");
+                None
+            }
+        }
+    });
 
     let demes = w
         .required(top, &root, "population")
@@ -609,6 +627,7 @@ pub fn validate_with(
     let spec = JobSpec {
         label,
         series,
+        as_of,
         population: PopulationSpec { demes: deme_specs },
         migration: MigrationSpec {
             orientation,

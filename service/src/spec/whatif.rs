@@ -377,7 +377,7 @@ pub(super) fn check(
                 w.report(
                     &root.key(member),
                     format!(
-                        "{member} are evaluated by the exact method or by ensembles: use \
+                        "`{member}` is evaluated by the exact method or by ensembles: use \
                          method.kind `exact`, `ensemble` or `auto`"
                     ),
                 );

@@ -11,7 +11,8 @@
 //! (statuses, submissions, the run document), [`db`] (the SQLite job store; the only module
 //! with SQL), [`worker`] (claims, leases, heartbeats, computation on the bounded pool),
 //! [`http`] (routes and problem documents; the only module with actix), [`server`] (start-up
-//! and the shutdown sequence). Dependencies point one way:
+//! and the shutdown sequence). [`http_client`] is the minimal HTTP/1.1 client shared by the
+//! demo ([`demo`]) and the client commands ([`cli`]). Dependencies point one way:
 //! `http -> domain -> {db, worker, compute} -> science`.
 #![forbid(unsafe_code)]
 
@@ -23,6 +24,7 @@ pub mod demo;
 pub mod document;
 pub mod domain;
 pub mod http;
+pub mod http_client;
 pub mod problem;
 pub mod provenance;
 pub mod server;

@@ -10,9 +10,10 @@
 //! The HTTP service (`demefix serve`): [`config`] (the `DEMEFIX_*` variables), [`domain`]
 //! (statuses, submissions, the run document), [`db`] (the SQLite job store; the only module
 //! with SQL), [`worker`] (claims, leases, heartbeats, computation on the bounded pool),
+//! [`notify`] (completion notifications to a job's `notify_url`),
 //! [`http`] (routes and problem documents; the only module with actix), [`server`] (start-up
 //! and the shutdown sequence). [`http_client`] is the minimal HTTP/1.1 client shared by the
-//! demo ([`demo`]) and the client commands ([`cli`]). Dependencies point one way:
+//! demo ([`demo`]) and the notifier ([`notify`]). Dependencies point one way:
 //! `http -> domain -> {db, worker, compute} -> science`.
 #![forbid(unsafe_code)]
 
@@ -25,6 +26,7 @@ pub mod document;
 pub mod domain;
 pub mod http;
 pub mod http_client;
+pub mod notify;
 pub mod problem;
 pub mod provenance;
 pub mod server;

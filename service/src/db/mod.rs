@@ -8,7 +8,9 @@
 //! (stored once per canonical hash, never changed), the queue (claim, heartbeat, the
 //! append-only log of ensemble chunks,
 //! completion fenced by the lease token, requeue on shutdown, rescue of expired leases by
-//! the claim itself), cancellation, and the read side (one run, a page of runs, a matrix).
+//! the claim itself), cancellation, the completion notifications of finished runs
+//! (`db/notifications.rs`: queued in the transaction that finishes a run), and the read side
+//! (one run, a page of runs, a matrix).
 //!
 //! Every read-then-write transaction starts with `BEGIN IMMEDIATE`, so it takes the write
 //! lock before reading and never fails half-way with `SQLITE_BUSY_SNAPSHOT`. Single-statement
@@ -16,10 +18,12 @@
 //! across a computation. Statements are checked at run time (`sqlx::query`), so building
 //! needs no database.
 
+mod notifications;
 mod rows;
 mod stats;
 
-pub use rows::{Claim, MatrixRecord, RunRecord};
+pub use notifications::DueNotification;
+pub use rows::{Claim, MatrixRecord, NotificationRecord, RunRecord};
 pub use stats::RunCounts;
 
 use crate::domain::{self, Finish, ListQuery, NewMatrix, NewRun, RunStatus};
@@ -280,12 +284,13 @@ impl Store {
             "INSERT INTO runs (id, status, series, spec, spec_sha256, request, request_sha256,
                                matrix_sha256, warnings, progress_total, submitted_at,
                                idempotency_key, provenance, results, progress_done,
-                               started_at, finished_at, reused_from, sensitivity, whatif)
+                               started_at, finished_at, reused_from, sensitivity, whatif,
+                               notify_url)
              VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14,
                      CASE WHEN ?15 IS NULL THEN 0 ELSE ?10 END,
                      CASE WHEN ?15 IS NULL THEN NULL ELSE ?11 END,
                      CASE WHEN ?15 IS NULL THEN NULL ELSE ?11 END,
-                     ?15, ?16, ?17)",
+                     ?15, ?16, ?17, ?18)",
         )
         .bind(&new.id)
         .bind(if reuse.is_some() {
@@ -308,8 +313,13 @@ impl Store {
         .bind(reuse.as_ref().map(|r| &r.reused_from))
         .bind(reuse.as_ref().and_then(|r| r.sensitivity.as_ref()))
         .bind(reuse.as_ref().and_then(|r| r.whatif.as_ref()))
+        .bind(&new.notify_url)
         .execute(&mut *tx)
         .await?;
+        if reuse.is_some() {
+            // A reused run is finished from the start.
+            notifications::enqueue(&mut tx, &new.id, &now).await?;
+        }
         tx.commit().await?;
         let run = self.run(&new.id).await?.ok_or_else(|| DbError::Corrupt {
             id: new.id.clone(),
@@ -419,6 +429,7 @@ impl Store {
                 .execute(&mut *tx)
                 .await?;
                 delete_chunks(&mut tx, id).await?;
+                notifications::enqueue(&mut tx, id, &now_text()).await?;
                 false
             }
             "running" => {
@@ -597,6 +608,7 @@ impl Store {
         let accepted = result.rows_affected() == 1;
         if accepted {
             delete_chunks(&mut tx, id).await?;
+            notifications::enqueue(&mut tx, id, &now).await?;
         }
         tx.commit().await?;
         Ok(accepted)

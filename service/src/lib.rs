@@ -5,7 +5,8 @@
 //! [`spec`] (the job document and its validation), [`provenance`] (hashes and versions that
 //! let an auditor recompute a run), [`compute`] (runs a validated job with the science
 //! crate), [`document`] (the result document and its field names), [`cli`] (the local
-//! command line; `main.rs` only calls it).
+//! command line; `main.rs` only calls it), [`client`] (the client commands `submit`, `get`,
+//! `report` against a running service).
 //!
 //! The HTTP service (`demefix serve`): [`config`] (the `DEMEFIX_*` variables), [`domain`]
 //! (statuses, submissions, the run document), [`db`] (the SQLite job store; the only module
@@ -13,11 +14,12 @@
 //! [`notify`] (completion notifications to a job's `notify_url`),
 //! [`http`] (routes and problem documents; the only module with actix), [`server`] (start-up
 //! and the shutdown sequence). [`http_client`] is the minimal HTTP/1.1 client shared by the
-//! demo ([`demo`]) and the notifier ([`notify`]). Dependencies point one way:
+//! demo ([`demo`]), the client commands ([`client`]) and the notifier ([`notify`]). Dependencies point one way:
 //! `http -> domain -> {db, worker, compute} -> science`.
 #![forbid(unsafe_code)]
 
 pub mod cli;
+pub mod client;
 pub mod compute;
 pub mod config;
 pub mod db;

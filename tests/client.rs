@@ -24,10 +24,18 @@ const FINISH: Duration = Duration::from_secs(60);
 /// Runs the `demefix` binary with `args` (and `stdin`), without blocking the runtime the
 /// service runs on.
 async fn demefix(args: &[&str], stdin: Option<&[u8]>) -> Output {
+    demefix_with_url_var(args, stdin, None).await
+}
+
+/// [`demefix`] with `DEMEFIX_URL` set to `url` (removed when `None`).
+async fn demefix_with_url_var(args: &[&str], stdin: Option<&[u8]>, url: Option<&str>) -> Output {
     let mut command = tokio::process::Command::new(env!("CARGO_BIN_EXE_demefix"));
+    match url {
+        Some(url) => command.env("DEMEFIX_URL", url),
+        None => command.env_remove("DEMEFIX_URL"),
+    };
     command
         .args(args)
-        .env_remove("DEMEFIX_URL")
         .stdin(if stdin.is_some() {
             std::process::Stdio::piped()
         } else {
@@ -94,20 +102,12 @@ async fn submit_wait_prints_the_finished_run_and_get_prints_it_again() {
     // service named by DEMEFIX_URL.
     let mut other = small_job();
     other["selection"]["s"] = json!([0.2]);
-    let mut command = tokio::process::Command::new(env!("CARGO_BIN_EXE_demefix"));
-    let child = command
-        .args(["submit", "-", "--idempotency-key", "nightly-1"])
-        .env("DEMEFIX_URL", &app.base)
-        .stdin(std::process::Stdio::piped())
-        .stdout(std::process::Stdio::piped())
-        .stderr(std::process::Stdio::piped())
-        .spawn()
-        .unwrap();
-    let mut child = child;
-    let mut input = child.stdin.take().unwrap();
-    input.write_all(other.to_string().as_bytes()).await.unwrap();
-    drop(input);
-    let quick = child.wait_with_output().await.unwrap();
+    let quick = demefix_with_url_var(
+        &["submit", "-", "--idempotency-key", "nightly-1"],
+        Some(other.to_string().as_bytes()),
+        Some(&app.base),
+    )
+    .await;
     assert_eq!(quick.status.code(), Some(0), "{}", stderr(&quick));
     let text = String::from_utf8(quick.stdout).unwrap();
     let lines: Vec<&str> = text.lines().collect();
@@ -282,6 +282,11 @@ impl Drop for Receiver {
 
 /// Polls the run until its notification is in `state` and returns the run document.
 async fn wait_notification(base: &str, id: &str, state: &str) -> Value {
+    wait_notification_until(base, id, |n| n["state"] == state).await
+}
+
+/// Polls the run until `done` holds for its `notification` and returns the run document.
+async fn wait_notification_until(base: &str, id: &str, done: impl Fn(&Value) -> bool) -> Value {
     let client = reqwest::Client::new();
     let deadline = Instant::now() + FINISH;
     loop {
@@ -293,16 +298,27 @@ async fn wait_notification(base: &str, id: &str, state: &str) -> Value {
             .json()
             .await
             .unwrap();
-        if run["notification"]["state"] == state {
+        if done(&run["notification"]) {
             return run;
         }
         assert!(
             Instant::now() < deadline,
-            "notification not {state}: {:#}",
+            "notification still {:#}",
             run["notification"]
         );
-        tokio::time::sleep(Duration::from_millis(25)).await;
+        tokio::time::sleep(Duration::from_millis(20)).await;
     }
+}
+
+/// `POST /v1/runs/{id}/cancel`, expecting it to be accepted.
+async fn cancel(app: &TestApp, id: &str) {
+    let res = app
+        .client
+        .post(app.url(&format!("/v1/runs/{id}/cancel")))
+        .send()
+        .await
+        .unwrap();
+    assert!([200, 202].contains(&res.status().as_u16()));
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
@@ -418,21 +434,10 @@ async fn a_pending_notification_survives_a_restart_and_is_delivered_by_the_next_
         .await
         .unwrap();
     let id = run["id"].as_str().unwrap().to_owned();
-    let pending = wait_notification(&base, &id, "pending").await;
-    let deadline = Instant::now() + FINISH;
-    let mut pending = pending;
-    while pending["notification"]["attempts"] == 0 {
-        assert!(Instant::now() < deadline);
-        tokio::time::sleep(Duration::from_millis(20)).await;
-        pending = client
-            .get(format!("{base}/v1/runs/{id}"))
-            .send()
-            .await
-            .unwrap()
-            .json()
-            .await
-            .unwrap();
-    }
+    let pending = wait_notification_until(&base, &id, |n| {
+        n["state"] == "pending" && n["attempts"].as_u64() > Some(0)
+    })
+    .await;
     first.stop().await;
     let attempts_before = pending["notification"]["attempts"].as_u64().unwrap();
     assert!(attempts_before >= 1);
@@ -465,13 +470,7 @@ async fn a_cancelled_run_notifies_too() {
     job["notify_url"] = json!(receiver.url);
     let run: Value = app.post_job(&job).await.json().await.unwrap();
     let id = run["id"].as_str().unwrap().to_owned();
-    let res = app
-        .client
-        .post(app.url(&format!("/v1/runs/{id}/cancel")))
-        .send()
-        .await
-        .unwrap();
-    assert!([200, 202].contains(&res.status().as_u16()));
+    cancel(&app, &id).await;
     let done = wait_notification(&app.base, &id, "delivered").await;
     assert_eq!(done["status"], "cancelled");
     let seen = receiver.seen();
@@ -538,5 +537,42 @@ async fn notify_url_is_checked_at_its_pointer_and_stays_out_of_the_spec_hash() {
     none["selection"]["s"] = json!([0.3]);
     let run = app.succeeded(&none, FINISH).await;
     assert!(run.get("notification").is_none(), "{run:#}");
+    app.stop().await;
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn submit_wait_on_a_run_cancelled_meanwhile_prints_it_and_exits_5() {
+    let app = spawn_app_with(|_| {}).await;
+    let dir = TempDir::new("client");
+    let file = job_file(&dir, "long.json", &helpers::ensemble_job(5_000_000, 1_000));
+    let waiting = {
+        let file = file.clone();
+        let base = app.base.clone();
+        tokio::spawn(async move {
+            demefix(
+                &["submit", &file, "--wait", "--quiet", "--url", &base],
+                None,
+            )
+            .await
+        })
+    };
+    let deadline = Instant::now() + FINISH;
+    let id = loop {
+        let page = app.get_json("/v1/runs").await;
+        if let Some(id) = page["runs"][0]["id"].as_str() {
+            break id.to_owned();
+        }
+        assert!(Instant::now() < deadline, "the submission never arrived");
+        tokio::time::sleep(Duration::from_millis(20)).await;
+    };
+    cancel(&app, &id).await;
+    let out = waiting.await.unwrap();
+    assert_eq!(out.status.code(), Some(5), "{}", stderr(&out));
+    assert!(out.stderr.is_empty(), "--quiet: {}", stderr(&out));
+    let doc: Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert_eq!(
+        (doc["id"].as_str(), doc["status"].as_str()),
+        (Some(id.as_str()), Some("cancelled"))
+    );
     app.stop().await;
 }

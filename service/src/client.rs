@@ -257,7 +257,7 @@ fn reason_phrase(status: u16) -> &'static str {
 }
 
 /// The wait a reply asks for: `Retry-After` in seconds (RFC 9110, section 10.2.3; an
-/// HTTP date is not read), bounded to 0.1 to 60 s; [`DEFAULT_POLL`] without one.
+/// HTTP date is not read), bounded to 0.1 to 60 s; 1 s without one.
 pub fn poll_interval(reply: &Reply) -> Duration {
     reply
         .header("retry-after")

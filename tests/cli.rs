@@ -1037,3 +1037,18 @@ fn bad_interventions_and_plans_exit_2_with_their_pointers() {
         assert!(at.contains(&want), "{want} missing from {found:?}");
     }
 }
+
+#[test]
+fn a_notify_url_is_accepted_by_run_which_says_it_sends_no_notification() {
+    let mut job = small_job();
+    job["notify_url"] = json!("http://127.0.0.1:9/done");
+    let doc = stdout_json(&run_stdin(&job, &[]));
+    assert!(doc["spec"].get("notify_url").is_none(), "{:#}", doc["spec"]);
+    let warnings = doc["warnings"].as_array().unwrap();
+    assert!(
+        warnings
+            .iter()
+            .any(|w| w.as_str().unwrap().contains("sends no notification")),
+        "{warnings:#?}"
+    );
+}

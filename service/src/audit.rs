@@ -205,6 +205,8 @@ pub struct RunFields {
     pub submitted_at: String,
     /// The run whose results were reused.
     pub reused_from: Option<String>,
+    /// Where the completion notice goes.
+    pub notify_url: Option<String>,
     /// Status.
     pub status: String,
     /// Provenance text.
@@ -238,6 +240,7 @@ pub fn submission_facts(run: &RunFields) -> Value {
         "idempotency_key": run.idempotency_key,
         "submitted_at": run.submitted_at,
         "reused_from": run.reused_from,
+        "notify_url": run.notify_url,
     })
 }
 

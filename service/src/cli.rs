@@ -1,13 +1,17 @@
-//! The local command line: `demefix run`, `demefix validate`, `demefix serve` and
-//! `demefix demo` (the service end to end in one process, see [`crate::demo`]).
+//! The local command line: `demefix run`, `demefix validate`, `demefix serve`, `demefix demo`
+//! (the service end to end in one process, see [`crate::demo`]), and the client commands
+//! `demefix submit`, `demefix get` and `demefix report` against a running service (see
+//! [`crate::client`], which owns their behaviour and exit codes).
 //!
 //! This module owns everything at the process edge: reading the job (a file or `-` for
-//! stdin), the exit codes (0 success, 2 invalid job with the RFC 9457 problem document on
-//! stderr, 1 any other failure with a message on stderr), picking a seed when a job needs one
-//! and has none, the thread pool, and the progress bar on stderr. Results go to stdout as
-//! pretty JSON. `serve` reads its configuration from the environment ([`crate::config`])
-//! and hands over to [`crate::server::serve`] on a multi-threaded tokio runtime.
+//! stdin), the exit codes of `run` and `validate` (0 success, 2 invalid job with the RFC 9457
+//! problem document on stderr, 1 any other failure with a message on stderr), picking a seed
+//! when a job needs one and has none, the thread pool, and the progress bar on stderr.
+//! Results go to stdout as pretty JSON. `serve` reads its configuration from the environment
+//! ([`crate::config`]) and hands over to [`crate::server::serve`] on a multi-threaded tokio
+//! runtime.
 
+use crate::client;
 use crate::compute::{self, ComputeError};
 use crate::document::{RunDocument, DISCLAIMER};
 use crate::problem::InvalidJob;
@@ -42,9 +46,75 @@ enum Command {
     /// Start the service in this process with a fresh database, post the demo scenario
     /// (examples/ferry-islands-ensemble.json) for two update rules, and print the results.
     Demo(DemoArgs),
+    /// Submit a job to a running service (POST /v1/runs); print the run id and its Location,
+    /// or with --wait the finished run document.
+    #[command(after_help = CLIENT_EXIT_CODES)]
+    Submit(SubmitArgs),
+    /// Print the document of a run of a running service (GET /v1/runs/{id}).
+    #[command(after_help = CLIENT_EXIT_CODES)]
+    Get(GetArgs),
+    /// Save the report of a run (GET /v1/runs/{id}/report) to a file.
+    #[command(after_help = CLIENT_EXIT_CODES)]
+    Report(ReportArgs),
     /// Work with the tamper-evident audit log of a database file.
     #[command(subcommand)]
     Audit(AuditCommand),
+}
+
+/// The exit codes of the client commands (`crate::client::exit`), for `--help`.
+const CLIENT_EXIT_CODES: &str = "Exit codes: 0 done (with --wait: the run succeeded); \
+    1 any other failure; 2 the service rejected the job (422, every problem printed with its \
+    pointer); 3 the service cannot be reached; 4 the run failed; 5 the run was cancelled; \
+    6 no such run (404).\n\nOutputs are model estimates for planning, not forecasts; \
+    decisions rest with the responsible public-health authorities.";
+
+#[derive(Debug, Args)]
+struct ServiceArgs {
+    /// Address of the running service, an http:// URL [default: $DEMEFIX_URL, else
+    /// http://127.0.0.1:8080].
+    #[arg(long, value_name = "URL")]
+    url: Option<String>,
+}
+
+#[derive(Debug, Args)]
+struct SubmitArgs {
+    /// Job document (JSON), or `-` to read it from standard input.
+    spec: String,
+    /// Wait until the run has finished, showing progress on stderr, and print its document.
+    #[arg(long)]
+    wait: bool,
+    /// Idempotency-Key of the submission: a retry with the same key and job gets the same
+    /// run.
+    #[arg(long, value_name = "KEY")]
+    idempotency_key: Option<String>,
+    /// Compute the run even when an earlier run of the same spec could answer it
+    /// (Cache-Control: no-cache).
+    #[arg(long)]
+    no_reuse: bool,
+    /// No progress or status lines on stderr.
+    #[arg(long)]
+    quiet: bool,
+    #[command(flatten)]
+    service: ServiceArgs,
+}
+
+#[derive(Debug, Args)]
+struct GetArgs {
+    /// Run id.
+    id: String,
+    #[command(flatten)]
+    service: ServiceArgs,
+}
+
+#[derive(Debug, Args)]
+struct ReportArgs {
+    /// Run id.
+    id: String,
+    /// File to save the report to (replaced if it exists; written whole or not at all).
+    #[arg(long, value_name = "FILE")]
+    out: std::path::PathBuf,
+    #[command(flatten)]
+    service: ServiceArgs,
 }
 
 #[derive(Debug, Subcommand)]
@@ -155,11 +225,39 @@ pub fn main() -> ExitCode {
         Command::Serve => serve(),
         Command::Demo(args) => demo(&args),
         Command::Audit(AuditCommand::Verify(args)) => audit_verify(&args),
+        Command::Submit(args) => return submit(args),
+        Command::Get(args) => {
+            let url = client::service_url(args.service.url);
+            return client::run(&url, &client::Command::Get { id: args.id });
+        }
+        Command::Report(args) => {
+            let url = client::service_url(args.service.url);
+            let command = client::Command::Report {
+                id: args.id,
+                out: args.out,
+            };
+            return client::run(&url, &command);
+        }
     };
     match outcome {
         Ok(()) => ExitCode::SUCCESS,
         Err(failure) => failure.report(),
     }
+}
+
+fn submit(args: SubmitArgs) -> ExitCode {
+    let job = match read_job(&args.spec) {
+        Ok(bytes) => bytes,
+        Err(failure) => return failure.report(),
+    };
+    let command = client::Command::Submit(client::SubmitOptions {
+        job,
+        idempotency_key: args.idempotency_key,
+        no_reuse: args.no_reuse,
+        wait: args.wait,
+        quiet: args.quiet,
+    });
+    client::run(&client::service_url(args.service.url), &command)
 }
 
 fn serve() -> Result<(), Failure> {
@@ -325,6 +423,13 @@ fn run(args: &RunArgs) -> Result<(), Failure> {
     let provenance = Provenance::new(&job, &bytes, &outcome.method, threads);
     let mut warnings = job.warnings().to_vec();
     warnings.extend(outcome.warnings);
+    if job.notify_url().is_some() {
+        warnings.push(
+            "notify_url is used by the service (POST /v1/runs, `demefix submit`); \
+             `demefix run` sends no notification"
+                .to_owned(),
+        );
+    }
     print_json(&RunDocument {
         spec: job.spec(),
         provenance: &provenance,

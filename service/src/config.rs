@@ -30,10 +30,17 @@ pub const DEFAULT_BODY_LIMIT: usize = 8 * 1024 * 1024;
 pub const DEFAULT_LEASE_SECS: u64 = 30;
 /// Default `DEMEFIX_HEARTBEAT_SECS`.
 pub const DEFAULT_HEARTBEAT_SECS: u64 = 5;
+/// Default `DEMEFIX_NOTIFY_BACKOFF_MS`: the wait after a completion notification's first
+/// failed attempt (it doubles after each further one, see [`crate::notify`]).
+pub const DEFAULT_NOTIFY_BACKOFF_MS: u64 = 1_000;
+/// Default `DEMEFIX_NOTIFY_ATTEMPTS`: delivery attempts of a completion notification.
+pub const DEFAULT_NOTIFY_ATTEMPTS: u32 = 6;
+/// Largest `DEMEFIX_NOTIFY_ATTEMPTS`.
+pub const MAX_NOTIFY_ATTEMPTS: u32 = 30;
 
 /// Every setting: its environment variable and its key in the configuration file, in the
 /// order of the fields of [`RawConfig`].
-pub const SETTINGS: [(&str, &str); 8] = [
+pub const SETTINGS: [(&str, &str); 10] = [
     ("DEMEFIX_BIND", "bind"),
     ("DEMEFIX_DB", "db"),
     ("DEMEFIX_WORKERS", "workers"),
@@ -42,6 +49,8 @@ pub const SETTINGS: [(&str, &str); 8] = [
     ("DEMEFIX_LEASE_SECS", "lease_secs"),
     ("DEMEFIX_HEARTBEAT_SECS", "heartbeat_secs"),
     ("DEMEFIX_LOG_FORMAT", "log_format"),
+    ("DEMEFIX_NOTIFY_BACKOFF_MS", "notify_backoff_ms"),
+    ("DEMEFIX_NOTIFY_ATTEMPTS", "notify_attempts"),
 ];
 
 /// How log lines are written.
@@ -72,6 +81,10 @@ pub struct RawConfig {
     pub heartbeat_secs: Option<String>,
     /// `DEMEFIX_LOG_FORMAT`.
     pub log_format: Option<String>,
+    /// `DEMEFIX_NOTIFY_BACKOFF_MS`.
+    pub notify_backoff_ms: Option<String>,
+    /// `DEMEFIX_NOTIFY_ATTEMPTS`.
+    pub notify_attempts: Option<String>,
 }
 
 impl RawConfig {
@@ -89,8 +102,8 @@ impl RawConfig {
         raw
     }
 
-    fn slots_mut(&mut self) -> [(&'static str, &mut Option<String>); 8] {
-        let [bind, db, workers, max_states, body_limit, lease, heartbeat, log_format] =
+    fn slots_mut(&mut self) -> [(&'static str, &mut Option<String>); 10] {
+        let [bind, db, workers, max_states, body_limit, lease, heartbeat, log_format, notify_backoff, notify_attempts] =
             SETTINGS.map(|(name, _)| name);
         [
             (bind, &mut self.bind),
@@ -101,6 +114,8 @@ impl RawConfig {
             (lease, &mut self.lease_secs),
             (heartbeat, &mut self.heartbeat_secs),
             (log_format, &mut self.log_format),
+            (notify_backoff, &mut self.notify_backoff_ms),
+            (notify_attempts, &mut self.notify_attempts),
         ]
     }
 
@@ -140,6 +155,10 @@ pub struct FileConfig {
     pub heartbeat_secs: Option<u64>,
     /// As `DEMEFIX_LOG_FORMAT`.
     pub log_format: Option<String>,
+    /// As `DEMEFIX_NOTIFY_BACKOFF_MS`.
+    pub notify_backoff_ms: Option<u64>,
+    /// As `DEMEFIX_NOTIFY_ATTEMPTS`.
+    pub notify_attempts: Option<u64>,
 }
 
 impl FileConfig {
@@ -178,6 +197,8 @@ impl FileConfig {
             lease_secs: text(self.lease_secs),
             heartbeat_secs: text(self.heartbeat_secs),
             log_format: self.log_format,
+            notify_backoff_ms: text(self.notify_backoff_ms),
+            notify_attempts: text(self.notify_attempts),
         }
     }
 }
@@ -281,6 +302,11 @@ pub struct Config {
     pub heartbeat: Duration,
     /// Log format.
     pub log_format: LogFormat,
+    /// Wait after a completion notification's first failed attempt (doubling after each
+    /// further one).
+    pub notify_backoff: Duration,
+    /// Delivery attempts of a completion notification before it is recorded as failed.
+    pub notify_attempts: u32,
     /// The configuration file read, if any.
     pub file: Option<PathBuf>,
 }
@@ -344,6 +370,17 @@ impl Config {
                 return Err(bad("DEMEFIX_LOG_FORMAT", other, "must be `text` or `json`"))
             }
         };
+        let notify_backoff_ms = number("DEMEFIX_NOTIFY_BACKOFF_MS", &raw.notify_backoff_ms, 1u64)?
+            .unwrap_or(DEFAULT_NOTIFY_BACKOFF_MS);
+        let notify_attempts = number("DEMEFIX_NOTIFY_ATTEMPTS", &raw.notify_attempts, 1u32)?
+            .unwrap_or(DEFAULT_NOTIFY_ATTEMPTS);
+        if notify_attempts > MAX_NOTIFY_ATTEMPTS {
+            return Err(bad(
+                "DEMEFIX_NOTIFY_ATTEMPTS",
+                &notify_attempts.to_string(),
+                format!("must be at most {MAX_NOTIFY_ATTEMPTS}"),
+            ));
+        }
         Ok(Self {
             bind,
             db: PathBuf::from(raw.db.clone().unwrap_or_else(|| DEFAULT_DB.to_owned())),
@@ -354,6 +391,8 @@ impl Config {
             lease: Duration::from_secs(lease_secs),
             heartbeat: Duration::from_secs(heartbeat_secs),
             log_format,
+            notify_backoff: Duration::from_millis(notify_backoff_ms),
+            notify_attempts,
             file: None,
         })
     }
@@ -423,6 +462,11 @@ mod tests {
         assert_eq!(c.heartbeat, Duration::from_secs(DEFAULT_HEARTBEAT_SECS));
         assert_eq!(c.log_format, LogFormat::Text);
         assert_eq!(c.max_states, None);
+        assert_eq!(
+            c.notify_backoff,
+            Duration::from_millis(DEFAULT_NOTIFY_BACKOFF_MS)
+        );
+        assert_eq!(c.notify_attempts, DEFAULT_NOTIFY_ATTEMPTS);
         assert_eq!(c.file, None);
     }
 
@@ -491,6 +535,8 @@ mod tests {
             lease_secs = 20
             heartbeat_secs = 4
             log_format = "json"
+            notify_backoff_ms = 250
+            notify_attempts = 3
         "#;
         for (_, key) in SETTINGS {
             assert!(text.contains(&format!("{key} = ")), "{key} is tried");
@@ -507,7 +553,29 @@ mod tests {
         assert_eq!(c.lease, Duration::from_secs(20));
         assert_eq!(c.heartbeat, Duration::from_secs(4));
         assert_eq!(c.log_format, LogFormat::Json);
+        assert_eq!(c.notify_backoff, Duration::from_millis(250));
+        assert_eq!(c.notify_attempts, 3);
         assert_eq!(c.file, Some(PathBuf::from("f")));
+    }
+
+    #[test]
+    fn notification_attempts_are_bounded() {
+        let raw = RawConfig {
+            notify_attempts: Some((MAX_NOTIFY_ATTEMPTS + 1).to_string()),
+            ..RawConfig::default()
+        };
+        assert_eq!(
+            Config::from_raw(&raw).unwrap_err().setting(),
+            Some("DEMEFIX_NOTIFY_ATTEMPTS")
+        );
+        let raw = RawConfig {
+            notify_backoff_ms: Some("0".to_owned()),
+            ..RawConfig::default()
+        };
+        assert_eq!(
+            Config::from_raw(&raw).unwrap_err().setting(),
+            Some("DEMEFIX_NOTIFY_BACKOFF_MS")
+        );
     }
 
     #[test]
@@ -630,6 +698,8 @@ mod tests {
         assert_eq!(c.lease, defaults.lease);
         assert_eq!(c.heartbeat, defaults.heartbeat);
         assert_eq!(c.log_format, defaults.log_format);
+        assert_eq!(c.notify_backoff, defaults.notify_backoff);
+        assert_eq!(c.notify_attempts, defaults.notify_attempts);
         let env = include_str!("../../deploy/demefix.env.example");
         for (name, key) in SETTINGS {
             assert!(

@@ -8,12 +8,12 @@
 //! reference and the ratio to it, mean fixation time), the run ids, where the database is, and
 //! the standing caution.
 //!
-//! The client side is a minimal HTTP/1.1 exchange over `tokio::net::TcpStream` ([`http1`]):
-//! one request per connection (`Connection: close`), JSON bodies, `Content-Length` or chunked
-//! responses. The only HTTP client crate in the tree (reqwest) is a dev-dependency, and a
-//! loopback JSON API needs nothing more than this.
+//! The client side is the minimal HTTP/1.1 client of [`crate::http_client`] (one request per
+//! connection, JSON bodies); the only HTTP client crate in the tree (reqwest) is a
+//! dev-dependency, and a loopback JSON API needs nothing more.
 
 use crate::config::{Config, RawConfig};
+use crate::http_client;
 use crate::server::{self, StartError};
 use indicatif::{MultiProgress, ProgressBar, ProgressDrawTarget, ProgressStyle};
 use serde_json::Value;
@@ -80,7 +80,7 @@ pub enum DemoError {
     Start(#[from] StartError),
     /// An HTTP exchange with the service failed.
     #[error("HTTP exchange with the service failed: {0}")]
-    Http(#[from] http1::HttpError),
+    Http(#[from] http_client::HttpError),
     /// The service answered something the demo did not expect.
     #[error("{request} answered {status}: {body}")]
     Unexpected {
@@ -335,7 +335,7 @@ async fn exchange_json(
     body: Option<&[u8]>,
     want: u16,
 ) -> Result<Value, DemoError> {
-    let reply = http1::exchange(addr, method, path, body).await?;
+    let reply = http_client::exchange(addr, method, path, body).await?;
     let request = format!("{method} {path}");
     if reply.status != want {
         return Err(unexpected(
@@ -604,259 +604,6 @@ fn write_report(
         writeln!(out, "{line}")?;
     }
     Ok(())
-}
-
-pub mod http1 {
-    //! A minimal HTTP/1.1 client for the demo's loopback exchanges: one request per
-    //! connection (`Connection: close`), an optional JSON body, and a response read to the end
-    //! of the connection whose body is delimited by `Content-Length`, chunked transfer coding,
-    //! or the close.
-
-    use std::net::SocketAddr;
-    use std::time::Duration;
-    use tokio::io::{AsyncReadExt, AsyncWriteExt};
-    use tokio::net::TcpStream;
-
-    /// Longest wait for one whole exchange.
-    pub const EXCHANGE_TIMEOUT: Duration = Duration::from_secs(30);
-    /// Largest response accepted, bytes.
-    pub const MAX_RESPONSE: usize = 16 * 1024 * 1024;
-
-    /// A response: status code and body (headers are not kept).
-    #[derive(Debug, Clone, PartialEq, Eq)]
-    pub struct Reply {
-        /// HTTP status code.
-        pub status: u16,
-        /// The body, transfer coding removed.
-        pub body: Vec<u8>,
-    }
-
-    /// Why an exchange failed.
-    #[derive(Debug, thiserror::Error)]
-    pub enum HttpError {
-        /// Connecting, writing or reading failed.
-        #[error("{0}")]
-        Io(#[from] std::io::Error),
-        /// No complete answer within [`EXCHANGE_TIMEOUT`].
-        #[error("no complete answer within {0:?}")]
-        Timeout(Duration),
-        /// The answer is not an HTTP/1.x response this client reads.
-        #[error("malformed response: {0}")]
-        Malformed(&'static str),
-    }
-
-    /// The bytes of a request for `path` at `host`, with `body` sent as JSON.
-    pub fn encode_request(
-        method: &str,
-        host: SocketAddr,
-        path: &str,
-        body: Option<&[u8]>,
-    ) -> Vec<u8> {
-        let mut head = format!(
-            "{method} {path} HTTP/1.1\r\nHost: {host}\r\nConnection: close\r\n\
-             Accept: application/json\r\n"
-        );
-        if let Some(b) = body {
-            head.push_str(&format!(
-                "Content-Type: application/json\r\nContent-Length: {}\r\n",
-                b.len()
-            ));
-        }
-        head.push_str("\r\n");
-        let mut bytes = head.into_bytes();
-        bytes.extend_from_slice(body.unwrap_or_default());
-        bytes
-    }
-
-    /// Sends one request to `addr` and reads the whole response.
-    pub async fn exchange(
-        addr: SocketAddr,
-        method: &str,
-        path: &str,
-        body: Option<&[u8]>,
-    ) -> Result<Reply, HttpError> {
-        let request = encode_request(method, addr, path, body);
-        let exchange = async {
-            let mut stream = TcpStream::connect(addr).await?;
-            stream.write_all(&request).await?;
-            let mut raw = Vec::new();
-            (&mut stream)
-                .take(MAX_RESPONSE as u64 + 1)
-                .read_to_end(&mut raw)
-                .await?;
-            if raw.len() > MAX_RESPONSE {
-                return Err(HttpError::Malformed(
-                    "larger than the 16 MiB this client reads",
-                ));
-            }
-            parse_response(&raw)
-        };
-        tokio::time::timeout(EXCHANGE_TIMEOUT, exchange)
-            .await
-            .map_err(|_| HttpError::Timeout(EXCHANGE_TIMEOUT))?
-    }
-
-    fn find(haystack: &[u8], needle: &[u8]) -> Option<usize> {
-        haystack.windows(needle.len()).position(|w| w == needle)
-    }
-
-    /// Reads a complete response (status line, headers, body).
-    pub fn parse_response(raw: &[u8]) -> Result<Reply, HttpError> {
-        let head_end = find(raw, b"\r\n\r\n").ok_or(HttpError::Malformed("no end of headers"))?;
-        let head = std::str::from_utf8(&raw[..head_end])
-            .map_err(|_| HttpError::Malformed("headers are not UTF-8"))?;
-        let mut lines = head.split("\r\n");
-        let mut status_line = lines.next().unwrap_or_default().splitn(3, ' ');
-        if !status_line
-            .next()
-            .is_some_and(|version| version.starts_with("HTTP/1."))
-        {
-            return Err(HttpError::Malformed("not an HTTP/1.x status line"));
-        }
-        let status = status_line
-            .next()
-            .and_then(|code| code.parse::<u16>().ok())
-            .filter(|code| (100..=999).contains(code))
-            .ok_or(HttpError::Malformed("no status code"))?;
-        let mut length = None;
-        let mut chunked = false;
-        for line in lines {
-            let (name, value) = line
-                .split_once(':')
-                .ok_or(HttpError::Malformed("a header line without a colon"))?;
-            let name = name.trim().to_ascii_lowercase();
-            if name == "content-length" {
-                let n = value
-                    .trim()
-                    .parse::<usize>()
-                    .map_err(|_| HttpError::Malformed("Content-Length is not a number"))?;
-                length = Some(n);
-            } else if name == "transfer-encoding" {
-                chunked = value.to_ascii_lowercase().contains("chunked");
-            }
-        }
-        let rest = &raw[head_end + 4..];
-        let body = if chunked {
-            decode_chunked(rest)?
-        } else if let Some(n) = length {
-            rest.get(..n)
-                .ok_or(HttpError::Malformed("body shorter than its Content-Length"))?
-                .to_vec()
-        } else {
-            rest.to_vec()
-        };
-        Ok(Reply { status, body })
-    }
-
-    /// Removes chunked transfer coding (RFC 9112 section 7.1); trailers are ignored.
-    fn decode_chunked(mut rest: &[u8]) -> Result<Vec<u8>, HttpError> {
-        let mut body = Vec::new();
-        loop {
-            let line_end =
-                find(rest, b"\r\n").ok_or(HttpError::Malformed("chunked body ends early"))?;
-            let size = std::str::from_utf8(&rest[..line_end])
-                .ok()
-                .and_then(|l| l.split(';').next())
-                .and_then(|s| usize::from_str_radix(s.trim(), 16).ok())
-                .ok_or(HttpError::Malformed("a chunk size is not hexadecimal"))?;
-            rest = &rest[line_end + 2..];
-            if size == 0 {
-                return Ok(body);
-            }
-            let chunk = rest
-                .get(..size)
-                .ok_or(HttpError::Malformed("chunked body ends early"))?;
-            body.extend_from_slice(chunk);
-            if rest.get(size..size + 2) != Some(b"\r\n".as_slice()) {
-                return Err(HttpError::Malformed("a chunk is not followed by CRLF"));
-            }
-            rest = &rest[size + 2..];
-        }
-    }
-
-    #[cfg(test)]
-    mod tests {
-        use super::*;
-
-        #[test]
-        fn a_sized_response_is_cut_at_its_content_length() {
-            let raw = b"HTTP/1.1 202 Accepted\r\ncontent-length: 7\r\nlocation: /v1/runs/x\r\n\r\n{\"a\":1}";
-            let reply = parse_response(raw).unwrap();
-            assert_eq!(reply.status, 202);
-            assert_eq!(reply.body, b"{\"a\":1}");
-        }
-
-        #[test]
-        fn a_chunked_response_is_decoded() {
-            let raw = b"HTTP/1.1 200 OK\r\nTransfer-Encoding: chunked\r\n\r\n4\r\n{\"a\"\r\n3;ext=1\r\n:1}\r\n0\r\n\r\n";
-            assert_eq!(parse_response(raw).unwrap().body, b"{\"a\":1}");
-        }
-
-        #[test]
-        fn a_body_without_length_runs_to_the_close() {
-            let raw = b"HTTP/1.0 404 Not Found\r\n\r\nnothing here";
-            let reply = parse_response(raw).unwrap();
-            assert_eq!(
-                (reply.status, reply.body.as_slice()),
-                (404, &b"nothing here"[..])
-            );
-        }
-
-        #[test]
-        fn truncated_or_foreign_answers_are_errors() {
-            for raw in [
-                &b"HTTP/1.1 200 OK\r\ncontent-length: 10\r\n\r\nshort"[..],
-                b"HTTP/1.1 200 OK\r\ntransfer-encoding: chunked\r\n\r\n9\r\nabc",
-                b"HTTP/1.1 200 OK\r\ntransfer-encoding: chunked\r\n\r\nzz\r\n",
-                b"SSH-2.0-OpenSSH\r\n\r\n",
-                b"HTTP/1.1 OK\r\n\r\n",
-                b"HTTP/1.1 200 OK\r\ncontent-length: 2",
-            ] {
-                assert!(
-                    parse_response(raw).is_err(),
-                    "{}",
-                    String::from_utf8_lossy(raw)
-                );
-            }
-        }
-
-        #[test]
-        fn a_request_with_a_body_declares_its_length_and_closes() {
-            let addr: SocketAddr = "127.0.0.1:8080".parse().unwrap();
-            let bytes = encode_request("POST", addr, "/v1/runs", Some(b"{}"));
-            let text = String::from_utf8(bytes).unwrap();
-            assert!(text.starts_with("POST /v1/runs HTTP/1.1\r\nHost: 127.0.0.1:8080\r\n"));
-            assert!(text.contains("Connection: close\r\n"));
-            assert!(text.ends_with("Content-Length: 2\r\n\r\n{}"));
-            let get = encode_request("GET", addr, "/healthz", None);
-            assert!(!String::from_utf8(get).unwrap().contains("Content-Length"));
-        }
-
-        #[tokio::test]
-        async fn an_exchange_reads_a_live_answer() {
-            let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
-            let addr = listener.local_addr().unwrap();
-            let server = tokio::spawn(async move {
-                let (mut socket, _) = listener.accept().await.unwrap();
-                let mut seen = Vec::new();
-                let mut buf = [0u8; 1024];
-                while find(&seen, b"\r\n\r\n{}").is_none() {
-                    let n = socket.read(&mut buf).await.unwrap();
-                    assert!(n > 0, "the request ends early");
-                    seen.extend_from_slice(&buf[..n]);
-                }
-                socket
-                    .write_all(b"HTTP/1.1 201 Created\r\ncontent-length: 2\r\n\r\nok")
-                    .await
-                    .unwrap();
-                seen
-            });
-            let reply = exchange(addr, "POST", "/x", Some(b"{}")).await.unwrap();
-            assert_eq!((reply.status, reply.body.as_slice()), (201, &b"ok"[..]));
-            let seen = server.await.unwrap();
-            assert!(seen.starts_with(b"POST /x HTTP/1.1\r\n"));
-        }
-    }
 }
 
 #[cfg(test)]

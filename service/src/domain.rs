@@ -1,8 +1,8 @@
 //! The service's vocabulary between the HTTP edge, the store and the workers: run statuses,
 //! a submission prepared from raw request bytes ([`prepare_submission`], [`prepare`]), a
 //! matrix to store ([`NewMatrix`]), how a run ends ([`Finish`]), how a run reuses an earlier
-//! run's results ([`reuse`]), list queries, and the documents clients receive ([`RunView`],
-//! [`MatrixView`]).
+//! run's results ([`reuse`]), list queries, and the documents clients receive ([`RunView`]
+//! with its [`NotificationView`], [`MatrixView`]).
 //!
 //! This module owns what a submission records (the normalised spec with a seed picked when
 //! the job needs one and its `matrix_ref` resolved into the matrix, the raw body and its
@@ -104,6 +104,8 @@ pub struct NewRun {
     pub allow_reuse: bool,
     /// The succeeded run this run recomputes (a re-verification), if any.
     pub verifies: Option<String>,
+    /// The job's `notify_url` (not part of the spec nor of its hash).
+    pub notify_url: Option<String>,
 }
 
 /// A matrix ready to store, content-addressed by its canonical hash (`api.md`).
@@ -247,6 +249,7 @@ pub fn prepare_document(
         method_version: demefix_science::METHOD_VERSION.to_owned(),
         allow_reuse: true,
         verifies: None,
+        notify_url: job.notify_url().map(str::to_owned),
     })
 }
 
@@ -522,6 +525,81 @@ pub struct RunView<'a> {
     /// The standing disclaimer, with results.
     #[serde(skip_serializing_if = "Option::is_none")]
     pub disclaimer: Option<&'static str>,
+    /// The completion notification, when the job has a `notify_url`.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub notification: Option<NotificationView<'a>>,
+}
+
+/// Where a completion notification is.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum NotificationState {
+    /// The run has not finished yet.
+    Waiting,
+    /// The run has finished; the notice is being delivered (or waits for its next attempt).
+    Pending,
+    /// A 2xx answer was received.
+    Delivered,
+    /// Every attempt failed; `last_error` says why the last one did.
+    Failed,
+}
+
+/// `notification` of the run document: where the completion notice goes and how its
+/// delivery stands.
+#[derive(Debug, Serialize)]
+pub struct NotificationView<'a> {
+    /// The job's `notify_url`.
+    pub url: &'a str,
+    /// Where the delivery is.
+    pub state: NotificationState,
+    /// Attempts started so far.
+    pub attempts: u32,
+    /// RFC 3339 UTC: when the next attempt is due, while pending.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub next_attempt_at: Option<&'a str>,
+    /// RFC 3339 UTC: when a 2xx answer was received.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub delivered_at: Option<&'a str>,
+    /// RFC 3339 UTC: when the attempts were used up.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub failed_at: Option<&'a str>,
+    /// Why the latest failed attempt failed.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub last_error: Option<&'a str>,
+}
+
+impl<'a> NotificationView<'a> {
+    /// The notification of `run`, if its job has a `notify_url`.
+    pub fn of(run: &'a crate::db::RunRecord) -> Option<Self> {
+        let url = run.notify_url.as_deref()?;
+        let Some(n) = &run.notification else {
+            return Some(Self {
+                url,
+                state: NotificationState::Waiting,
+                attempts: 0,
+                next_attempt_at: None,
+                delivered_at: None,
+                failed_at: None,
+                last_error: None,
+            });
+        };
+        let state = if n.delivered_at.is_some() {
+            NotificationState::Delivered
+        } else if n.failed_at.is_some() {
+            NotificationState::Failed
+        } else {
+            NotificationState::Pending
+        };
+        Some(Self {
+            url: &n.url,
+            state,
+            attempts: n.attempts,
+            next_attempt_at: n.next_attempt_at.as_deref(),
+            delivered_at: n.delivered_at.as_deref(),
+            failed_at: n.failed_at.as_deref(),
+            last_error: n.last_error.as_deref(),
+        })
+    }
 }
 
 /// A stored JSON column that does not parse.
@@ -584,6 +662,7 @@ impl<'a> RunView<'a> {
             error: run.error.as_deref(),
             reused_from: run.reused_from.as_deref(),
             disclaimer: run.results.as_ref().map(|_| crate::document::DISCLAIMER),
+            notification: NotificationView::of(run),
         })
     }
 }

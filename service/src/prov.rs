@@ -173,6 +173,8 @@ mod tests {
             reused_from: reused_from.map(str::to_owned),
             sensitivity: None,
             whatif: None,
+            notify_url: None,
+            notification: None,
         }
     }
 

@@ -1,9 +1,11 @@
-//! Assembly of `demefix serve`: opens the store, starts the compute pool and the workers,
-//! binds the HTTP server, and owns the shutdown sequence.
+//! Assembly of `demefix serve`: opens the store, starts the compute pool, the workers and
+//! the notifier of completion notifications ([`crate::notify`]), binds the HTTP server, and
+//! owns the shutdown sequence.
 //!
 //! Shutdown (first SIGTERM or SIGINT): stop accepting connections and finish requests in
 //! flight, tell every worker to stop its computation at the next chunk boundary and put its
-//! run back in the queue, wait for them, close the database. A second signal exits at once;
+//! run back in the queue, wait for them (and for notification attempts in flight), close
+//! the database. A second signal exits at once;
 //! the next start rescues whatever was left running once its lease expires.
 
 use crate::config::{Config, LogFormat};
@@ -192,6 +194,7 @@ pub async fn start(config: Config) -> Result<Running, StartError> {
     let alive = Arc::new(AtomicUsize::new(0));
     let (shutdown, shutdown_rx) = watch::channel(false);
     let wal_task = spawn_wal_checkpoints(store.clone(), shutdown_rx.clone());
+    let shutdown_rx_for_notifier = shutdown_rx.clone();
     let mut workers = Workers {
         store: store.clone(),
         config: config.clone(),
@@ -202,6 +205,11 @@ pub async fn start(config: Config) -> Result<Running, StartError> {
     }
     .spawn();
     workers.push(wal_task);
+    workers.push(crate::notify::spawn(
+        store.clone(),
+        crate::notify::RetryPolicy::of(&config),
+        shutdown_rx_for_notifier,
+    ));
 
     let state = web::Data::new(AppState {
         store: store.clone(),

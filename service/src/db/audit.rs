@@ -158,7 +158,7 @@ async fn current(
             let row = sqlx::query(
                 "SELECT request, spec, spec_sha256, matrix_sha256, series, idempotency_key,
                         submitted_at, reused_from, status, provenance, results, warnings,
-                        sensitivity, whatif, error, finished_at
+                        sensitivity, whatif, error, finished_at, notify_url
                  FROM runs WHERE id = ?",
             )
             .bind(key)
@@ -176,6 +176,7 @@ async fn current(
                 idempotency_key: r.try_get("idempotency_key")?,
                 submitted_at: r.try_get("submitted_at")?,
                 reused_from: r.try_get("reused_from")?,
+                notify_url: r.try_get("notify_url")?,
                 status: r.try_get("status")?,
                 provenance: r.try_get("provenance")?,
                 results: r.try_get("results")?,

@@ -8,7 +8,9 @@
 //! (stored once per canonical hash, never changed), the queue (claim, heartbeat, the
 //! append-only log of ensemble chunks,
 //! completion fenced by the lease token, requeue on shutdown, rescue of expired leases by
-//! the claim itself), cancellation, and the read side (one run, a page of runs, a matrix).
+//! the claim itself), cancellation, the completion notifications of finished runs (`db/notifications.rs`:
+//! queued in the transaction that finishes a run), and the read side (one run, a page of
+//! runs, a matrix).
 //! Every state change appends its audit entry (`db/audit.rs`) in the transaction that made
 //! it, so the log and the records never disagree about what happened.
 //!
@@ -19,6 +21,7 @@
 //! needs no database.
 
 mod audit;
+mod notifications;
 mod rows;
 mod series;
 mod stats;
@@ -26,7 +29,8 @@ mod verification;
 
 pub use audit::verify_file as verify_audit_file;
 
-pub use rows::{Claim, MatrixRecord, RunRecord};
+pub use notifications::DueNotification;
+pub use rows::{Claim, MatrixRecord, NotificationRecord, RunRecord};
 pub use series::{SeriesRun, SeriesSummary};
 pub use stats::RunCounts;
 pub use verification::VerificationRecord;
@@ -303,12 +307,12 @@ impl Store {
                                matrix_sha256, warnings, progress_total, submitted_at,
                                idempotency_key, provenance, results, progress_done,
                                started_at, finished_at, reused_from, sensitivity, whatif,
-                               verifies)
+                               verifies, notify_url)
              VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14,
                      CASE WHEN ?15 IS NULL THEN 0 ELSE ?10 END,
                      CASE WHEN ?15 IS NULL THEN NULL ELSE ?11 END,
                      CASE WHEN ?15 IS NULL THEN NULL ELSE ?11 END,
-                     ?15, ?16, ?17, ?18)",
+                     ?15, ?16, ?17, ?18, ?19)",
         )
         .bind(&new.id)
         .bind(if reuse.is_some() {
@@ -332,6 +336,7 @@ impl Store {
         .bind(reuse.as_ref().and_then(|r| r.sensitivity.as_ref()))
         .bind(reuse.as_ref().and_then(|r| r.whatif.as_ref()))
         .bind(&new.verifies)
+        .bind(&new.notify_url)
         .execute(&mut *tx)
         .await?;
         if let Some(original) = &new.verifies {
@@ -348,6 +353,8 @@ impl Store {
         .await?;
         if reuse.is_some() {
             audit::append(&mut tx, &now, EventKind::Finished, Some(&new.id), members).await?;
+            // A reused run is finished from the start.
+            notifications::enqueue(&mut tx, &new.id, &now).await?;
         }
         tx.commit().await?;
         let run = self.run(&new.id).await?.ok_or_else(|| DbError::Corrupt {
@@ -462,6 +469,7 @@ impl Store {
                 delete_chunks(&mut tx, id).await?;
                 audit::append(&mut tx, &now, EventKind::Finished, Some(id), members).await?;
                 verification::close(&mut tx, id, &now).await?;
+                notifications::enqueue(&mut tx, id, &now_text()).await?;
                 false
             }
             "running" => {
@@ -689,6 +697,7 @@ impl Store {
             )
             .await?;
             verification::close(&mut tx, id, &now).await?;
+            notifications::enqueue(&mut tx, id, &now).await?;
         }
         tx.commit().await?;
         Ok(accepted)

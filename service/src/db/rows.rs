@@ -8,7 +8,11 @@ use crate::domain::{ReusableRun, RunStatus};
 /// Columns of [`RunRow`], in `SELECT` form.
 pub(super) const RUN_COLUMNS: &str = "id, status, series, spec, provenance, results, warnings, \
     error, progress_done, progress_total, submitted_at, started_at, finished_at, reused_from, \
-    sensitivity, whatif";
+    sensitivity, whatif, notify_url, \
+    (SELECT json_object('url', n.url, 'attempts', n.attempts, \
+                        'next_attempt_at', n.next_attempt_at, 'last_error', n.last_error, \
+                        'delivered_at', n.delivered_at, 'failed_at', n.failed_at) \
+     FROM notifications n WHERE n.run_id = runs.id) AS notification";
 
 #[derive(Debug, sqlx::FromRow)]
 pub(super) struct RunRow {
@@ -28,6 +32,26 @@ pub(super) struct RunRow {
     reused_from: Option<String>,
     sensitivity: Option<String>,
     whatif: Option<String>,
+    notify_url: Option<String>,
+    notification: Option<String>,
+}
+
+/// The delivery state of a finished run's completion notification (table `notifications`).
+#[derive(Debug, Clone, PartialEq, Eq, serde::Deserialize)]
+pub struct NotificationRecord {
+    /// Where it goes (the job's `notify_url`).
+    pub url: String,
+    /// Attempts started so far.
+    pub attempts: u32,
+    /// RFC 3339 UTC: when the next attempt is due (or an attempt in flight lapses); `None`
+    /// once delivered or given up.
+    pub next_attempt_at: Option<String>,
+    /// Why the latest failed attempt failed.
+    pub last_error: Option<String>,
+    /// RFC 3339 UTC: when a 2xx answer was received.
+    pub delivered_at: Option<String>,
+    /// RFC 3339 UTC: when the attempts were used up without a 2xx answer.
+    pub failed_at: Option<String>,
 }
 
 /// A stored run. JSON members are the stored text.
@@ -65,6 +89,10 @@ pub struct RunRecord {
     pub sensitivity: Option<String>,
     /// What-if answers (JSON object text with `interventions` and/or `plan`), when computed.
     pub whatif: Option<String>,
+    /// The job's `notify_url`, if it has one.
+    pub notify_url: Option<String>,
+    /// Its completion notification, once the run has finished.
+    pub notification: Option<NotificationRecord>,
 }
 
 fn corrupt(id: &str, what: impl Into<String>) -> DbError {
@@ -82,8 +110,16 @@ impl RunRow {
     pub(super) fn into_record(self) -> Result<RunRecord, DbError> {
         let status = RunStatus::parse(&self.status)
             .ok_or_else(|| corrupt(&self.id, format!("status {:?}", self.status)))?;
+        let notification = self
+            .notification
+            .as_deref()
+            .map(serde_json::from_str::<NotificationRecord>)
+            .transpose()
+            .map_err(|e| corrupt(&self.id, format!("notification: {e}")))?;
         Ok(RunRecord {
             warnings: warnings(&self.id, &self.warnings)?,
+            notify_url: self.notify_url,
+            notification,
             status,
             series: self.series,
             spec: self.spec,

@@ -18,6 +18,11 @@
 //! `outputs.arrival_fractions` `[]`, `outputs.sensitivity` `false`. `method.approximations`
 //! has no written default: absent, every approximation is computed in
 //! [`approximations::DEFAULT_ORDER`] and the member stays absent from the spec.
+//!
+//! `notify_url` (where the service POSTs a notice when the run finishes) is delivery
+//! metadata, not part of the computation: it is validated here ([`crate::http_client::HttpUrl`],
+//! `http://` only) and kept on the [`ValidatedJob`] ([`ValidatedJob::notify_url`]), but it is
+//! not a member of [`JobSpec`], so it never enters `spec_sha256` nor result reuse.
 
 pub mod approximations;
 pub mod csv;
@@ -73,6 +78,7 @@ const TOP_FIELDS: &[&str] = &[
     "outputs",
     "interventions",
     "plan",
+    "notify_url",
 ];
 
 /// The requested method.
@@ -268,9 +274,16 @@ pub struct ValidatedJob {
     states: Option<u64>,
     warnings: Vec<String>,
     whatif: whatif::WhatIfJob,
+    notify_url: Option<String>,
 }
 
 impl ValidatedJob {
+    /// `notify_url` as sent (a valid `http://` URL), if the job has one. Not part of
+    /// [`ValidatedJob::spec`].
+    pub fn notify_url(&self) -> Option<&str> {
+        self.notify_url.as_deref()
+    }
+
     /// The normalised job.
     pub fn spec(&self) -> &JobSpec {
         &self.spec
@@ -503,6 +516,9 @@ pub fn validate_with(
     let label = top
         .get("label")
         .and_then(|v| label(&mut w, v, &root.key("label")));
+    let notify_url = top
+        .get("notify_url")
+        .and_then(|v| notify_url(&mut w, v, &root.key("notify_url")));
     let series = top.get("series").and_then(|v| {
         let at = root.key("series");
         let s = w.string(v, &at)?;
@@ -646,7 +662,9 @@ pub fn validate_with(
         plan,
     };
     let starts: Vec<Start> = starts.into_iter().map(|(_, s)| s).collect();
-    finish(spec, starts, resolved, limits)
+    let mut job = finish(spec, starts, resolved, limits)?;
+    job.notify_url = notify_url;
+    Ok(job)
 }
 
 /// The checks that need the whole job: population totals, reachability, state-space size.
@@ -806,7 +824,29 @@ fn finish(
         states,
         warnings,
         whatif,
+        notify_url: None,
     })
+}
+
+/// `notify_url`: an `http://` URL with a host (the service has no TLS client).
+fn notify_url(w: &mut Walker, v: &Value, at: &Pointer) -> Option<String> {
+    let text = w.string(v, at)?;
+    match crate::http_client::HttpUrl::parse(text) {
+        Ok(_) => Some(text.to_owned()),
+        Err(e) => {
+            w.report(at, format!("`{text}`: {e}", text = shorten(text)));
+            None
+        }
+    }
+}
+
+/// At most 100 characters of `text`, for messages.
+fn shorten(text: &str) -> String {
+    if text.chars().count() <= 100 {
+        text.to_owned()
+    } else {
+        format!("{}...", text.chars().take(100).collect::<String>())
+    }
 }
 
 fn too_large(e: &ExactError) -> String {

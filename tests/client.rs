@@ -576,3 +576,66 @@ async fn submit_wait_on_a_run_cancelled_meanwhile_prints_it_and_exits_5() {
     );
     app.stop().await;
 }
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn verify_and_changes_from_the_command_line() {
+    let app = spawn_app_with(|_| {}).await;
+    let dir = TempDir::new("client-nights");
+    let mut ids = Vec::new();
+    for (night, flow) in [("2026-11-30", 4), ("2026-12-01", 9)] {
+        let mut job = small_job();
+        job["series"] = json!("cli-nights");
+        job["as_of"] = json!(night);
+        job["migration"]["matrix"][0][1] = json!(flow);
+        let file = job_file(&dir, &format!("{night}.json"), &job);
+        let out = demefix(
+            &["submit", &file, "--wait", "--quiet", "--url", &app.base],
+            None,
+        )
+        .await;
+        assert_eq!(out.status.code(), Some(0), "{}", stderr(&out));
+        let doc: Value = serde_json::from_slice(&out.stdout).unwrap();
+        ids.push(doc["id"].as_str().unwrap().to_owned());
+    }
+
+    let out = demefix(
+        &[
+            "changes",
+            "cli-nights",
+            "--threshold",
+            "0.5",
+            "--url",
+            &app.base,
+        ],
+        None,
+    )
+    .await;
+    assert_eq!(out.status.code(), Some(0), "{}", stderr(&out));
+    let report: Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert_eq!(report["from"]["run_id"], ids[0].as_str());
+    assert_eq!(report["to"]["run_id"], ids[1].as_str());
+    assert_eq!(report["threshold"], 0.5);
+    assert_eq!(report["matrix_changes"]["entries"][0]["change"], 5.0);
+    assert_eq!(report["rows"].as_array().unwrap().len(), 2);
+
+    let out = demefix(&["verify", &ids[1], "--wait", "--url", &app.base], None).await;
+    assert_eq!(out.status.code(), Some(0), "{}", stderr(&out));
+    let verification: Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert_eq!(verification["status"], "identical", "{verification:#}");
+    assert_eq!(verification["run_id"], ids[1].as_str());
+
+    let unknown = demefix(
+        &[
+            "verify",
+            "01890000-0000-7000-8000-000000000000",
+            "--url",
+            &app.base,
+        ],
+        None,
+    )
+    .await;
+    assert_eq!(unknown.status.code(), Some(6), "{}", stderr(&unknown));
+    let no_series = demefix(&["changes", "no-such-series", "--url", &app.base], None).await;
+    assert_eq!(no_series.status.code(), Some(6), "{}", stderr(&no_series));
+    app.stop().await;
+}

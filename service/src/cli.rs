@@ -56,6 +56,13 @@ enum Command {
     /// Save the report of a run (GET /v1/runs/{id}/report) to a file.
     #[command(after_help = CLIENT_EXIT_CODES)]
     Report(ReportArgs),
+    /// Re-verify a succeeded run of a running service (POST /v1/runs/{id}/verify): recompute it
+    /// from its stored spec and say whether the result is byte-identical (exit 7 when not).
+    #[command(after_help = CLIENT_EXIT_CODES)]
+    Verify(VerifyArgs),
+    /// Print the change report between two runs of a series (GET /v1/series/{name}/changes).
+    #[command(after_help = CLIENT_EXIT_CODES)]
+    Changes(ChangesArgs),
     /// Work with the tamper-evident audit log of a database file.
     #[command(subcommand)]
     Audit(AuditCommand),
@@ -65,7 +72,7 @@ enum Command {
 const CLIENT_EXIT_CODES: &str = "Exit codes: 0 done (with --wait: the run succeeded); \
     1 any other failure; 2 the service rejected the job (422, every problem printed with its \
     pointer); 3 the service cannot be reached; 4 the run failed; 5 the run was cancelled; \
-    6 no such run (404).\n\nOutputs are model estimates for planning, not forecasts; \
+    6 no such run (404); 7 (verify) the recomputed result differs.\n\nOutputs are model estimates for planning, not forecasts; \
     decisions rest with the responsible public-health authorities.";
 
 #[derive(Debug, Args)]
@@ -94,6 +101,37 @@ struct SubmitArgs {
     /// No progress or status lines on stderr.
     #[arg(long)]
     quiet: bool,
+    #[command(flatten)]
+    service: ServiceArgs,
+}
+
+#[derive(Debug, Args)]
+struct VerifyArgs {
+    /// Run id.
+    id: String,
+    /// Wait until the recomputation has ended and print the finished verification.
+    #[arg(long)]
+    wait: bool,
+    #[command(flatten)]
+    service: ServiceArgs,
+}
+
+#[derive(Debug, Args)]
+struct ChangesArgs {
+    /// Series name.
+    series: String,
+    /// The earlier run: a run id or an as_of date [default: the succeeded run before --to].
+    #[arg(long, value_name = "ID|DATE")]
+    from: Option<String>,
+    /// The later run: a run id or an as_of date [default: the latest succeeded run].
+    #[arg(long, value_name = "ID|DATE")]
+    to: Option<String>,
+    /// Flag fixation-probability changes at least this large (absolute).
+    #[arg(long, value_name = "X")]
+    threshold: Option<f64>,
+    /// Flag time changes at least this large, generations.
+    #[arg(long, value_name = "G")]
+    generations_threshold: Option<f64>,
     #[command(flatten)]
     service: ServiceArgs,
 }
@@ -229,6 +267,36 @@ pub fn main() -> ExitCode {
         Command::Get(args) => {
             let url = client::service_url(args.service.url);
             return client::run(&url, &client::Command::Get { id: args.id });
+        }
+        Command::Verify(args) => {
+            let url = client::service_url(args.service.url);
+            let command = client::Command::Verify {
+                id: args.id,
+                wait: args.wait,
+            };
+            return client::run(&url, &command);
+        }
+        Command::Changes(args) => {
+            let url = client::service_url(args.service.url);
+            let mut query = Vec::new();
+            for (name, value) in [("from", args.from), ("to", args.to)] {
+                if let Some(v) = value {
+                    query.push((name.to_owned(), v));
+                }
+            }
+            for (name, value) in [
+                ("threshold", args.threshold),
+                ("generations_threshold", args.generations_threshold),
+            ] {
+                if let Some(v) = value {
+                    query.push((name.to_owned(), v.to_string()));
+                }
+            }
+            let command = client::Command::Changes {
+                series: args.series,
+                query,
+            };
+            return client::run(&url, &command);
         }
         Command::Report(args) => {
             let url = client::service_url(args.service.url);

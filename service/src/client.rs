@@ -42,6 +42,8 @@ pub mod exit {
     pub const CANCELLED: u8 = 5;
     /// No such run (or no report for it): 404.
     pub const NOT_FOUND: u8 = 6;
+    /// `verify`: the recomputed result is not byte-identical to the record.
+    pub const DIFFERENT: u8 = 7;
 }
 
 /// Longest wait for the answer to a submission (validation of a large job takes a while).
@@ -91,6 +93,20 @@ pub enum Command {
         id: String,
         /// Where to save the body.
         out: PathBuf,
+    },
+    /// `demefix verify ID [--wait]`.
+    Verify {
+        /// Run id.
+        id: String,
+        /// Poll until the verification has ended.
+        wait: bool,
+    },
+    /// `demefix changes SERIES [--from X] [--to Y] [--threshold T]`.
+    Changes {
+        /// Series name.
+        series: String,
+        /// Query parameters (`from`, `to`, `threshold`, `generations_threshold`) as given.
+        query: Vec<(String, String)>,
     },
 }
 
@@ -325,6 +341,25 @@ impl Service {
                     }
                 }
             })
+    }
+
+    /// `method path` with no body: the reply, an error for any status but `expected`.
+    async fn call(&self, method: &str, path: &str, expected: &[u16]) -> Result<Reply, ClientError> {
+        let target = self.base.join(path);
+        let shown = format!("{method} {target}");
+        let mut request = Request::new(method, &target)
+            .timeout(GET_TIMEOUT)
+            .max_response(MAX_DOCUMENT);
+        if method == "POST" {
+            request = request.json(b"");
+        }
+        let reply = self.send(&request, &shown).await?;
+        if !expected.contains(&reply.status) {
+            return Err(ClientError::Answered(Box::new(ErrorAnswer::of(
+                shown, &reply,
+            ))));
+        }
+        Ok(reply)
     }
 
     /// `GET /v1/runs/{id}`: the reply (any status).
@@ -582,6 +617,66 @@ pub async fn report(service: &Service, id: &str, out: &Path) -> Result<usize, Cl
     Ok(reply.body.len())
 }
 
+/// `demefix verify ID`: asks for a re-verification (`POST /v1/runs/{id}/verify`); with `wait`,
+/// polls it until it has ended. Writes the verification document; exit 0 when byte-identical
+/// (or, without `wait`, when queued), [`exit::DIFFERENT`] when not, [`exit::FAILED`] when it
+/// could not be recomputed.
+pub async fn verify(
+    service: &Service,
+    id: &str,
+    wait: bool,
+    out: &mut dyn Write,
+) -> Result<u8, ClientError> {
+    let reply = service
+        .call(
+            "POST",
+            &format!("/v1/runs/{}/verify", path_segment(id)),
+            &[202],
+        )
+        .await?;
+    let mut doc: serde_json::Value = serde_json::from_slice(&reply.body).unwrap_or_default();
+    let check = doc["check_run_id"].as_str().unwrap_or_default().to_owned();
+    if wait {
+        let mut pause = poll_interval(&reply);
+        while doc["status"] == "pending" {
+            tokio::time::sleep(pause).await;
+            let r = service
+                .call(
+                    "GET",
+                    &format!("/v1/verifications/{}", path_segment(&check)),
+                    &[200],
+                )
+                .await?;
+            pause = poll_interval(&r);
+            doc = serde_json::from_slice(&r.body).unwrap_or_default();
+        }
+    }
+    let text = serde_json::to_vec(&doc).unwrap_or_default();
+    write_document(out, &text)?;
+    Ok(match doc["status"].as_str() {
+        Some("identical") | Some("pending") => exit::SUCCESS,
+        Some("different") => exit::DIFFERENT,
+        _ => exit::FAILED,
+    })
+}
+
+/// `demefix changes SERIES`: writes the change report of `GET /v1/series/{name}/changes`.
+pub async fn changes(
+    service: &Service,
+    series: &str,
+    query: &[(String, String)],
+    out: &mut dyn Write,
+) -> Result<u8, ClientError> {
+    let mut path = format!("/v1/series/{}/changes", path_segment(series));
+    for (i, (k, v)) in query.iter().enumerate() {
+        path.push(if i == 0 { '?' } else { '&' });
+        path.push_str(&format!("{}={}", path_segment(k), path_segment(v)));
+    }
+    let reply = service.call("GET", &path, &[200]).await?;
+    write_document(out, &reply.body)?;
+    Ok(exit::SUCCESS)
+}
+
 /// Writes `bytes` to `path` whole or not at all.
 fn save(path: &Path, bytes: &[u8]) -> Result<(), ClientError> {
     let failed = |source| ClientError::Output {
@@ -625,6 +720,10 @@ pub fn run(url: &str, command: &Command) -> ExitCode {
             match command {
                 Command::Submit(options) => submit(&service, options, &mut stdout).await,
                 Command::Get { id } => get(&service, id, &mut stdout).await,
+                Command::Verify { id, wait } => verify(&service, id, *wait, &mut stdout).await,
+                Command::Changes { series, query } => {
+                    changes(&service, series, query, &mut stdout).await
+                }
                 Command::Report { id, out } => {
                     let size = report(&service, id, out).await?;
                     eprintln!(

@@ -10,8 +10,8 @@
 //! The HTTP service (`demefix serve`): [`config`] (the `DEMEFIX_*` variables), [`domain`]
 //! (statuses, submissions, the run document), [`db`] (the SQLite job store; the only module
 //! with SQL), [`worker`] (claims, leases, heartbeats, computation on the bounded pool),
-//! [`http`] (routes and problem documents; the only module with actix), [`server`] (start-up
-//! and the shutdown sequence). Dependencies point one way:
+//! [`http`] (routes and problem documents; the only module with actix), [`report`] (the HTML
+//! report of a run, pure), [`server`] (start-up and the shutdown sequence). Dependencies point one way:
 //! `http -> domain -> {db, worker, compute} -> science`.
 #![forbid(unsafe_code)]
 
@@ -25,6 +25,7 @@ pub mod domain;
 pub mod http;
 pub mod problem;
 pub mod provenance;
+pub mod report;
 pub mod server;
 pub mod spec;
 pub mod whatif;

@@ -3,9 +3,12 @@
 //!
 //! Handlers are thin: they read the request, call one named step of the store or of
 //! [`crate::domain`], and shape the answer. Errors become problem documents in [`error`].
+//! `runs.rs` serves `/v1/runs`, `reports.rs` the HTML report of a run, `matrices.rs`
+//! `/v1/matrices`.
 
 pub mod error;
 mod matrices;
+mod reports;
 mod runs;
 
 use crate::config::Config;
@@ -28,6 +31,7 @@ pub const ROUTES: &[(&str, &str)] = &[
     ("POST", "/v1/runs"),
     ("GET", "/v1/runs"),
     ("GET", "/v1/runs/{id}"),
+    ("GET", "/v1/runs/{id}/report"),
     ("POST", "/v1/runs/{id}/cancel"),
     ("POST", "/v1/matrices"),
     ("GET", "/v1/matrices/{sha256}"),
@@ -60,6 +64,7 @@ pub fn routes(cfg: &mut web::ServiceConfig) {
             .route(web::get().to(runs::list)),
     )
     .service(web::resource("/v1/runs/{id}").route(web::get().to(runs::get)))
+    .service(web::resource("/v1/runs/{id}/report").route(web::get().to(reports::get)))
     .service(web::resource("/v1/runs/{id}/cancel").route(web::post().to(runs::cancel)))
     .service(web::resource("/v1/matrices").route(web::post().to(matrices::create)))
     .service(web::resource("/v1/matrices/{sha256}").route(web::get().to(matrices::get)))

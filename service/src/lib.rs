@@ -15,7 +15,8 @@
 //! [`http`] (routes and problem documents; the only module with actix), [`server`] (start-up
 //! and the shutdown sequence), [`audit`] (the rules of the hash-chained audit log), [`prov`]
 //! (the W3C PROV-JSON export of a run), [`verification`] (what a re-verification
-//! compares), [`changes`] (the change report between two runs of a series).
+//! compares), [`changes`] (the change report between two runs of a series), [`report`] (the
+//! HTML report of a run, pure).
 //! [`http_client`] is the minimal HTTP/1.1 client shared by the demo ([`demo`]), the client
 //! commands ([`client`]) and the notifier ([`notify`]). Dependencies point one way:
 //! `http -> domain -> {db, worker, compute} -> science`.
@@ -37,6 +38,7 @@ pub mod notify;
 pub mod problem;
 pub mod prov;
 pub mod provenance;
+pub mod report;
 pub mod server;
 pub mod spec;
 pub mod verification;

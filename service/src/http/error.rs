@@ -29,6 +29,14 @@ pub enum ApiError {
     NotFound(String),
     /// The request conflicts with the resource's state: 409.
     Conflict(String),
+    /// The run has not finished, so what was asked of it does not exist yet: 409 with
+    /// `Retry-After` and the run's id.
+    NotFinished {
+        /// The run.
+        run_id: String,
+        /// Its status (`queued` or `running`).
+        status: &'static str,
+    },
     /// The body's media type is not one the route reads: 415.
     UnsupportedMediaType(String),
     /// The body exceeds the limit: 413.
@@ -67,6 +75,10 @@ impl fmt::Display for ApiError {
             ApiError::PayloadTooLarge { limit } => {
                 write!(f, "the request body exceeds the limit of {limit} bytes")
             }
+            ApiError::NotFinished { run_id, status } => write!(
+                f,
+                "run {run_id} is {status}; its report exists once it has finished"
+            ),
             ApiError::Internal(e) => write!(f, "internal error: {e}"),
         }
     }
@@ -103,7 +115,7 @@ impl ResponseError for ApiError {
             }
             ApiError::BadRequest(_) => StatusCode::BAD_REQUEST,
             ApiError::NotFound(_) => StatusCode::NOT_FOUND,
-            ApiError::Conflict(_) => StatusCode::CONFLICT,
+            ApiError::Conflict(_) | ApiError::NotFinished { .. } => StatusCode::CONFLICT,
             ApiError::PayloadTooLarge { .. } => StatusCode::PAYLOAD_TOO_LARGE,
             ApiError::UnsupportedMediaType(_) => StatusCode::UNSUPPORTED_MEDIA_TYPE,
             ApiError::Unavailable(_) => StatusCode::SERVICE_UNAVAILABLE,
@@ -126,6 +138,7 @@ impl ResponseError for ApiError {
             ApiError::BadRequest(_) => ("/problems/bad-request", "Bad request"),
             ApiError::NotFound(_) => ("/problems/not-found", "Not found"),
             ApiError::Conflict(_) => ("/problems/conflict", "Conflict"),
+            ApiError::NotFinished { .. } => ("/problems/run-not-finished", "Run not finished"),
             ApiError::PayloadTooLarge { .. } => {
                 ("/problems/payload-too-large", "Payload too large")
             }
@@ -142,11 +155,16 @@ impl ResponseError for ApiError {
             }
             other => other.to_string(),
         };
-        if matches!(self, ApiError::Unavailable(_)) {
+        if matches!(
+            self,
+            ApiError::Unavailable(_) | ApiError::NotFinished { .. }
+        ) {
             response.insert_header((header::RETRY_AFTER, "1"));
         }
         let run_id = match self {
-            ApiError::IdempotencyKeyReused { run_id } => Some(run_id.as_str()),
+            ApiError::IdempotencyKeyReused { run_id } | ApiError::NotFinished { run_id, .. } => {
+                Some(run_id.as_str())
+            }
             _ => None,
         };
         response.json(ProblemDoc {

@@ -3,10 +3,13 @@
 //!
 //! Handlers are thin: they read the request, call one named step of the store or of
 //! [`crate::domain`], and shape the answer. Errors become problem documents in [`error`].
+//! `runs.rs` serves `/v1/runs`, `reports.rs` the HTML report of a run, `matrices.rs`
+//! `/v1/matrices`.
 
 mod audit;
 pub mod error;
 mod matrices;
+mod reports;
 mod runs;
 mod series;
 mod verifications;
@@ -31,6 +34,7 @@ pub const ROUTES: &[(&str, &str)] = &[
     ("POST", "/v1/runs"),
     ("GET", "/v1/runs"),
     ("GET", "/v1/runs/{id}"),
+    ("GET", "/v1/runs/{id}/report"),
     ("POST", "/v1/runs/{id}/cancel"),
     ("GET", "/v1/runs/{id}/provenance"),
     ("POST", "/v1/runs/{id}/verify"),
@@ -72,6 +76,7 @@ pub fn routes(cfg: &mut web::ServiceConfig) {
             .route(web::get().to(runs::list)),
     )
     .service(web::resource("/v1/runs/{id}").route(web::get().to(runs::get)))
+    .service(web::resource("/v1/runs/{id}/report").route(web::get().to(reports::get)))
     .service(web::resource("/v1/runs/{id}/cancel").route(web::post().to(runs::cancel)))
     .service(web::resource("/v1/runs/{id}/provenance").route(web::get().to(runs::provenance)))
     .service(web::resource("/v1/runs/{id}/verify").route(web::post().to(verifications::request)))

@@ -67,7 +67,7 @@ fn idempotency_key(req: &HttpRequest) -> Result<Option<String>, ApiError> {
 }
 
 /// The run document as JSON bytes.
-fn document(run: &RunRecord) -> Result<Vec<u8>, ApiError> {
+pub(super) fn document(run: &RunRecord) -> Result<Vec<u8>, ApiError> {
     let view = RunView::new(run).map_err(ApiError::internal)?;
     serde_json::to_vec(&view).map_err(ApiError::internal)
 }
@@ -142,6 +142,7 @@ pub(super) fn parse_id(id: &str) -> Result<String, ApiError> {
         .map_err(|_| ApiError::NotFound(format!("no run has the id `{id}`")))
 }
 
+/// The run named by the path segment `id` (404 when the id is malformed or unknown).
 pub(super) async fn find(state: &AppState, id: &str) -> Result<RunRecord, ApiError> {
     let id = parse_id(id)?;
     state
@@ -177,16 +178,12 @@ pub async fn get(
     let mut response = HttpResponse::Ok();
     response.content_type("application/json");
     if run.status.is_finished() {
-        let etag = format!("\"{}\"", crate::provenance::sha256_hex(&bytes));
-        let matches = req
-            .headers()
-            .get(header::IF_NONE_MATCH)
-            .and_then(|v| v.to_str().ok())
-            .is_some_and(|v| v.split(',').any(|t| t.trim() == etag || t.trim() == "*"));
-        response.insert_header((header::ETAG, etag));
+        let etag = strong_etag(&bytes);
+        let matches = etag_matches(&req, &etag);
+        response.insert_header((header::ETAG, etag.clone()));
         if matches {
             return Ok(HttpResponse::NotModified()
-                .insert_header((header::ETAG, response_etag(&bytes)))
+                .insert_header((header::ETAG, etag))
                 .finish());
         }
     } else {
@@ -197,8 +194,18 @@ pub async fn get(
     Ok(response.body(bytes))
 }
 
-fn response_etag(bytes: &[u8]) -> String {
+/// The strong entity tag of a body: its SHA-256, quoted.
+pub(super) fn strong_etag(bytes: &[u8]) -> String {
     format!("\"{}\"", crate::provenance::sha256_hex(bytes))
+}
+
+/// Whether `If-None-Match` names `etag` (or is `*`).
+pub(super) fn etag_matches(req: &HttpRequest, etag: &str) -> bool {
+    req.headers()
+        .get_all(header::IF_NONE_MATCH)
+        .filter_map(|v| v.to_str().ok())
+        .flat_map(|v| v.split(','))
+        .any(|t| t.trim() == etag || t.trim() == "*")
 }
 
 /// Query of `GET /v1/runs`.

@@ -73,7 +73,20 @@ pub async fn changes(
             }
         }
     }
-    let runs = runs_of(&state, &name).await?;
+    let report = change_report(&state, &name, from.as_deref(), to.as_deref(), thresholds).await?;
+    Ok(HttpResponse::Ok().json(report))
+}
+
+/// The change report of series `name` between the runs `from` and `to` name
+/// ([`changes::choose`]); `409` when they cannot be compared.
+pub(super) async fn change_report(
+    state: &AppState,
+    name: &str,
+    from: Option<&str>,
+    to: Option<&str>,
+    thresholds: Thresholds,
+) -> Result<Value, ApiError> {
+    let runs = runs_of(state, name).await?;
     let nights: Vec<Night<'_>> = runs
         .iter()
         .map(|r| Night {
@@ -82,8 +95,7 @@ pub async fn changes(
             succeeded: r.run.status == RunStatus::Succeeded,
         })
         .collect();
-    let (a, b) =
-        changes::choose(&nights, from.as_deref(), to.as_deref()).map_err(ApiError::Conflict)?;
+    let (a, b) = changes::choose(&nights, from, to).map_err(ApiError::Conflict)?;
     let parse = |text: Option<&str>| -> Value {
         text.and_then(|t| serde_json::from_str(t).ok())
             .unwrap_or(Value::Null)
@@ -96,8 +108,8 @@ pub async fn changes(
         parse(Some(&runs[b].run.spec)),
         parse(runs[b].run.results.as_deref()),
     );
-    let report = changes::report(
-        &name,
+    Ok(changes::report(
+        name,
         &Side {
             run_id: &runs[a].run.id,
             as_of: runs[a].as_of.as_deref(),
@@ -111,6 +123,5 @@ pub async fn changes(
             results: &res_b,
         },
         thresholds,
-    );
-    Ok(HttpResponse::Ok().json(report))
+    ))
 }

@@ -229,18 +229,57 @@ fn hash_of(text: Option<&str>) -> Value {
     text.map_or(Value::Null, |t| Value::String(sha256_hex(t.as_bytes())))
 }
 
-/// The fields of a run fixed when it was accepted.
+/// The fields of a run fixed when it was accepted, as stored.
 pub fn submission_facts(run: &RunFields) -> Value {
+    submission_facts_from(&Submission {
+        request_sha256: &sha256_hex(&run.request),
+        spec_text_sha256: &sha256_hex(run.spec.as_bytes()),
+        spec_sha256: &run.spec_sha256,
+        matrix_sha256: &run.matrix_sha256,
+        series: run.series.as_deref(),
+        idempotency_key: run.idempotency_key.as_deref(),
+        submitted_at: &run.submitted_at,
+        reused_from: run.reused_from.as_deref(),
+        notify_url: run.notify_url.as_deref(),
+    })
+}
+
+/// A run's fields fixed at submission, with the large ones already hashed (the submission
+/// hashes them before it takes the write lock).
+#[derive(Debug, Clone, Copy)]
+pub struct Submission<'a> {
+    /// SHA-256 of the raw request bytes.
+    pub request_sha256: &'a str,
+    /// SHA-256 of the stored spec text.
+    pub spec_text_sha256: &'a str,
+    /// Canonical spec hash.
+    pub spec_sha256: &'a str,
+    /// Matrix reference.
+    pub matrix_sha256: &'a str,
+    /// Series name.
+    pub series: Option<&'a str>,
+    /// Idempotency key.
+    pub idempotency_key: Option<&'a str>,
+    /// Submission time.
+    pub submitted_at: &'a str,
+    /// The run whose results were reused.
+    pub reused_from: Option<&'a str>,
+    /// Where the completion notice goes.
+    pub notify_url: Option<&'a str>,
+}
+
+/// [`submission_facts`] of fields in hand.
+pub fn submission_facts_from(s: &Submission<'_>) -> Value {
     json!({
-        "request_sha256": sha256_hex(&run.request),
-        "spec_text_sha256": sha256_hex(run.spec.as_bytes()),
-        "spec_sha256": run.spec_sha256,
-        "matrix_sha256": run.matrix_sha256,
-        "series": run.series,
-        "idempotency_key": run.idempotency_key,
-        "submitted_at": run.submitted_at,
-        "reused_from": run.reused_from,
-        "notify_url": run.notify_url,
+        "request_sha256": s.request_sha256,
+        "spec_text_sha256": s.spec_text_sha256,
+        "spec_sha256": s.spec_sha256,
+        "matrix_sha256": s.matrix_sha256,
+        "series": s.series,
+        "idempotency_key": s.idempotency_key,
+        "submitted_at": s.submitted_at,
+        "reused_from": s.reused_from,
+        "notify_url": s.notify_url,
     })
 }
 

@@ -100,6 +100,8 @@ pub struct NewRun {
     pub idempotency_key: Option<String>,
     /// Version of the numerical methods that would compute the run (reuse is keyed on it).
     pub method_version: String,
+    /// SHA-256 of `spec_json` (for the audit log's submission facts).
+    pub spec_text_sha256: String,
     /// Whether a succeeded run with the same spec and method version may answer this one.
     pub allow_reuse: bool,
     /// The succeeded run this run recomputes (a re-verification), if any.
@@ -231,6 +233,7 @@ pub fn prepare_document(
         job.pick_seed(u64::from_le_bytes(low));
     }
     let spec = job.spec();
+    let spec_json = serde_json::to_string(spec).expect("a job spec always serialises");
     let total = match crate::compute::ensemble_total(&job) {
         0 => 1,
         n => n,
@@ -238,7 +241,8 @@ pub fn prepare_document(
     Ok(NewRun {
         id: id.to_string(),
         series: spec.series.clone(),
-        spec_json: serde_json::to_string(spec).expect("a job spec always serialises"),
+        spec_text_sha256: sha256_hex(spec_json.as_bytes()),
+        spec_json,
         spec_sha256: spec_sha256(spec),
         request: body.to_vec(),
         request_sha256: sha256_hex(body),

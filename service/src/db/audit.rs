@@ -53,8 +53,23 @@ pub(super) async fn append(
     run_id: Option<&str>,
     members: Value,
 ) -> Result<(), DbError> {
+    append_with(conn, at, kind, run_id, members, None).await
+}
+
+/// [`append`] of a `submitted` entry whose facts the caller has in hand
+/// ([`crate::audit::submission_facts_from`]), so the stored row is not read back and hashed
+/// again under the write lock.
+pub(super) async fn append_with(
+    conn: &mut SqliteConnection,
+    at: &str,
+    kind: EventKind,
+    run_id: Option<&str>,
+    members: Value,
+    facts_in_hand: Option<Value>,
+) -> Result<(), DbError> {
     let facts = match kind.witness() {
         None => None,
+        Some(Witness::Submission) if facts_in_hand.is_some() => facts_in_hand,
         Some(witness) => {
             let key = witness_key(witness, run_id, &members);
             match current(conn, witness, key.as_deref()).await? {

@@ -343,12 +343,24 @@ impl Store {
             verification::open(&mut tx, original, &new.id, &new.method_version, &now).await?;
         }
         let members = json!({ "run_id": new.id });
-        audit::append(
+        let facts = crate::audit::submission_facts_from(&crate::audit::Submission {
+            request_sha256: &new.request_sha256,
+            spec_text_sha256: &new.spec_text_sha256,
+            spec_sha256: &new.spec_sha256,
+            matrix_sha256: &new.matrix.sha256,
+            series: new.series.as_deref(),
+            idempotency_key: new.idempotency_key.as_deref(),
+            submitted_at: &now,
+            reused_from: reuse.as_ref().map(|r| r.reused_from.as_str()),
+            notify_url: new.notify_url.as_deref(),
+        });
+        audit::append_with(
             &mut tx,
             &now,
             EventKind::Submitted,
             Some(&new.id),
             members.clone(),
+            Some(facts),
         )
         .await?;
         if reuse.is_some() {

@@ -48,8 +48,11 @@
 //! residents make a sum that must be 0 exactly 0, and all sums are rebuilt from scratch
 //! every [`REFRESH_EVERY`] state changes, so rounding never accumulates without bound.
 
+mod lanes;
 mod leap;
 mod small;
+
+pub(crate) use lanes::run_in_lanes;
 
 pub use leap::{LEAP_FROM_CHANGES, LEAP_FROM_COPIES, LEAP_WHILE_COPIES};
 pub use small::SMALL_MAX_DEMES;
@@ -1198,6 +1201,11 @@ impl Replicate {
                 _ => self.run_jump_chain(t, rng),
             }
         };
+        self.outcome(end)
+    }
+
+    /// The outcome of a replicate that ended with `end`.
+    fn outcome(&self, end: End) -> ReplicateOutcome {
         let arrivals = if end == End::Fixed {
             self.arrivals.clone()
         } else {

@@ -299,6 +299,9 @@ impl<'a> EnsembleJob<'a> {
     /// Runs replicates `range` on `pool` and returns their outcomes in index order.
     pub fn run_chunk(&self, range: Range<u64>, pool: &rayon::ThreadPool) -> ChunkOutcome {
         let start = range.start;
+        if self.tables.lane_capacity().is_some() {
+            return self.run_chunk_in_lanes(range, pool);
+        }
         let replicates = pool.install(|| {
             range
                 .into_par_iter()
@@ -313,7 +316,33 @@ impl<'a> EnsembleJob<'a> {
         });
         ChunkOutcome { start, replicates }
     }
+
+    /// [`Self::run_chunk`] for tables whose replicates run in lanes: blocks of
+    /// [`LANE_BLOCK`] replicates, each block's replicates stepped in turn on one thread.
+    fn run_chunk_in_lanes(&self, range: Range<u64>, pool: &rayon::ThreadPool) -> ChunkOutcome {
+        let start = range.start;
+        let blocks = (range.end - range.start).div_ceil(LANE_BLOCK);
+        let rng_for = |q: u64| stream::replicate_rng(&self.key, q);
+        let per_block: Vec<Vec<ReplicateOutcome>> = pool.install(|| {
+            (0..blocks)
+                .into_par_iter()
+                .map_init(
+                    || std::array::from_fn(|_| Replicate::new(&self.tables)),
+                    |reps, b| {
+                        let lo = start + b * LANE_BLOCK;
+                        let hi = (lo + LANE_BLOCK).min(range.end);
+                        chain::run_in_lanes(&self.tables, lo..hi, reps, &rng_for)
+                    },
+                )
+                .collect()
+        });
+        let replicates = per_block.into_iter().flatten().collect();
+        ChunkOutcome { start, replicates }
+    }
 }
+
+/// Replicates per block of the lane runner (see `chain/lanes.rs`).
+const LANE_BLOCK: u64 = 32;
 
 /// Runs the ensemble for one start on the given thread pool.
 ///

@@ -346,9 +346,14 @@ impl Replicate {
                 other => break other,
             }
         };
+        self.finish_small(&s, t);
+        status
+    }
+
+    /// Copies the counts of a replicate's small-path state back.
+    pub(crate) fn finish_small<const C: usize>(&mut self, s: &Small<C>, t: &Tables) {
         let m = t.demes();
         self.k.copy_from_slice(&s.k[..m]);
         self.variants = s.variants;
-        status
     }
 }

@@ -29,6 +29,7 @@
 
 use demefix::spec::{self, Limits};
 use demefix_science::approx::strong_migration;
+use demefix_science::weak;
 use serde_json::Value;
 use sha2::{Digest, Sha256};
 use std::path::{Path, PathBuf};
@@ -37,7 +38,7 @@ use std::sync::OnceLock;
 
 /// Total size the deme sizes are scaled to (extract.py's default, passed explicitly).
 const TOTAL_SIZE: u64 = 200;
-/// Selection coefficients of the sweep: neutral, and inside the strong-migration regime.
+/// Selection coefficients of the sweep: neutral, and one where selection dominates the answer.
 const NEUTRAL: f64 = 0.0;
 const SELECTED: f64 = 0.03;
 const REPLICATES: u64 = 10_000;
@@ -48,11 +49,15 @@ const SEED: u64 = 20_210_701;
 const TOLERANCE_SE: f64 = 4.5;
 /// Error allowed to the strong-migration limit, relative to its value, on top of the
 /// statistical tolerance. Measured on this job (the ignored test below): the limit lies 0-16%
-/// above 100,000-replicate ensembles, although its regime indicators hold; 25% keeps that
-/// measured error with a margin. With the statistical part this check is loose (it fails
-/// 15-19, the start with most fixations, only when off by about 45%); the neutral check
-/// against exact reproductive values is the sharp one.
+/// above 100,000-replicate ensembles; 25% keeps that measured error with a margin. The limit
+/// is outside its regime here (its estimated first-order error is 6.5%, against 5%), so
+/// this is a loose sanity check (it fails 15-19, the start with most fixations, only when
+/// off by about 45%); the neutral check against exact reproductive values is the sharp one.
 const STRONG_MIGRATION_ALLOWANCE: f64 = 0.25;
+/// Range the strong-migration limit's estimated first-order error must fall in on this job:
+/// above the regime's limit and below the 7% (uniform start) to 16% the ensembles measure
+/// (6.47% computed, 2026-12-03).
+const FIRST_ORDER_ERROR_RANGE: std::ops::Range<f64> = 0.05..0.08;
 
 fn scripts() -> PathBuf {
     PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("tests/real_data")
@@ -459,19 +464,57 @@ fn neutral_fixation_follows_the_reproductive_values_of_the_age_groups() {
 
 /// Checks every start of `doc` at `s = SELECTED` against the strong-migration limit
 /// (Nagylaki 1980, J. Math. Biol. 9:101-114, with Kimura 1962, Genetics 47:713-719;
-/// references.md §6.1), after asserting that the limit is inside its computed regime.
+/// references.md §6.1) up to [`STRONG_MIGRATION_ALLOWANCE`], after asserting that its regime
+/// turns it away on this matrix for the reason that explains its error: related copies in
+/// demes of 10-17 people, measured by its first-order error estimate (the weak-selection
+/// coefficients of the same model), while every other indicator holds.
 fn check_against_strong_migration(job: &Value, doc: &Value) {
     let validated = spec::validate(job, &Limits::default()).expect("the real job validates");
     let model = validated
         .model()
         .with_selection(SELECTED)
         .expect("the model takes the selection coefficient");
-    let approx = strong_migration::fixation(&model).expect("a positive reproductive value");
+    let mut approx = strong_migration::fixation(&model).expect("a positive reproductive value");
+    let weak = weak::first_order(&model).expect("the weak-selection coefficients");
+    approx.check_first_order(&weak).expect("the same demes");
+    let estimate = approx
+        .regime
+        .indicator("first_order_error")
+        .expect("the indicator is added")
+        .value;
     assert!(
-        approx.regime.inside,
-        "the cross-check assumes the regime holds: {:?}",
-        approx.regime
+        FIRST_ORDER_ERROR_RANGE.contains(&estimate),
+        "first-order error estimate {estimate}"
     );
+    assert!(!approx.regime.inside, "{:?}", approx.regime);
+    let failing: Vec<&str> = approx
+        .regime
+        .indicators
+        .iter()
+        .filter(|i| !i.inside)
+        .map(|i| i.name)
+        .collect();
+    assert_eq!(failing, ["first_order_error"], "{:?}", approx.regime);
+    // the run document says the same, and warns about it
+    for r in doc["results"].as_array().unwrap() {
+        if f64_of(&r["s"]) != SELECTED {
+            continue;
+        }
+        let entry = r["approximations"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .find(|a| a["name"] == "strong_migration")
+            .expect("a strong_migration entry beside every ensemble result");
+        assert_eq!(entry["valid_regime"]["inside"], false, "{entry}");
+    }
+    let warned = doc["warnings"].as_array().unwrap().iter().any(|w| {
+        w.as_str()
+            .unwrap()
+            .contains("`strong_migration` is outside its valid regime")
+    });
+    assert!(warned, "{:?}", doc["warnings"]);
+
     let n = sizes(job);
     let total = n.iter().sum::<u64>() as f64;
     let uniform: Vec<f64> = n.iter().map(|&v| v as f64 / total).collect();
@@ -488,11 +531,12 @@ fn check_against_strong_migration(job: &Value, doc: &Value) {
     }
 }
 
-/// At `s = 0.03` the strong-migration limit is inside its regime for this matrix and these
-/// sizes (smallest migrants per generation 5.9, against the threshold 5), and the ensembles
-/// must agree with it per start up to [`STRONG_MIGRATION_ALLOWANCE`].
+/// At `s = 0.03` the strong-migration limit is outside its regime for this matrix and these
+/// sizes by its first-order error estimate alone (smallest migrants per generation 5.9,
+/// against the threshold 5, would let it in), and the ensembles still lie within
+/// [`STRONG_MIGRATION_ALLOWANCE`] of it per start.
 #[test]
-fn selected_fixation_agrees_with_the_strong_migration_limit_inside_its_regime() {
+fn the_strong_migration_limit_is_turned_away_on_the_real_matrix_for_the_error_it_makes() {
     let fx = fixture();
     check_against_strong_migration(&fx.job, &fx.doc);
 }

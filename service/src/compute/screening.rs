@@ -15,6 +15,9 @@
 //! * Link rows (`outputs.sensitivity`) of an approximation answer come from the primary's
 //!   gradient; those of an ensemble answer from the first approximation inside its regime
 //!   (none, with a warning, when no approximation is inside).
+//! * The strong-migration regime carries `first_order_error` (its estimated relative error
+//!   from the exact first-order coefficients) whenever the weak-selection coefficients can
+//!   be computed for the job, listed or not.
 //! * The weak-selection pair system is refused above [`UNLISTED_WEAK_MAX_UNKNOWNS`] unless
 //!   the job lists `weak_selection`; then the weak module's own limit applies.
 
@@ -246,11 +249,20 @@ impl<'a> Screening<'a> {
                     .install(|| branching::establishment(model))
                     .map(|b| (b.regime.clone(), Answer::Branching(b)))
                     .map_err(|e| e.to_string()),
-                ApproximationName::StrongMigration => self
-                    .pool
-                    .install(|| strong_migration::fixation(model))
-                    .map(|a| (a.regime.clone(), Answer::StrongMigration(a)))
-                    .map_err(|e| e.to_string()),
+                ApproximationName::StrongMigration => {
+                    match self.pool.install(|| strong_migration::fixation(model)) {
+                        Ok(mut a) => {
+                            // the first-order check needs the exact first-order
+                            // coefficients; without them the indicator is absent
+                            if let Ok(w) = self.weak_coefficients() {
+                                a.check_first_order(&w)
+                                    .expect("coefficients of the job's own demes");
+                            }
+                            Ok((a.regime.clone(), Answer::StrongMigration(a)))
+                        }
+                        Err(e) => Err(e.to_string()),
+                    }
+                }
                 ApproximationName::WeakSelection => self
                     .weak_coefficients()
                     .map(|w| (weak::regime(model, &w), Answer::WeakSelection(w))),

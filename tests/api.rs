@@ -168,6 +168,14 @@ async fn every_malformed_job_is_a_422_with_its_pointers_and_stores_nothing() {
             &["/population/demes/2/size"],
         ),
         (
+            "two source groups feeding one deme (never absorbed)",
+            |j| {
+                j["migration"] = json!({"orientation": "recruitment",
+                    "matrix": [[1, 0, 0], [0, 1, 0], [0.5, 0.5, 0]]})
+            },
+            &["/migration"],
+        ),
+        (
             "two problems at once",
             |j| {
                 j["selection"]["s"] = json!([-1.0, 0.1]);

@@ -40,6 +40,7 @@ use crate::problem::{Pointer, Problem};
 use demefix_science::ensemble::{EnsembleConfig, Scheme};
 use demefix_science::exact::{self, ExactConfig, ExactError};
 use demefix_science::migration::{self, Needed, Resolved};
+use demefix_science::whatif::intervention::stays_mixed;
 use demefix_science::{
     reach, MatrixIssue, MigrationInput, Model, Orientation, Population, Rule, Scope, SelfFlows,
     Start,
@@ -753,6 +754,22 @@ fn finish(
             name_list(&from),
             name_list(never)
         ));
+    }
+    if let Some(mixed) = stays_mixed(&model) {
+        let (a, b) = mixed.sources;
+        w.report(
+            &root.key("migration"),
+            format!(
+                "`{deme}` receives lineages from two source groups that never receive any from \
+                 outside (one holds `{a}`, the other `{b}`): a variant can take over one group \
+                 while the other stays resident, so `{deme}` keeps receiving both types, the \
+                 chain is never absorbed and neither fixation everywhere nor an absorption time \
+                 exists. Add flows between the groups, or analyse them as separate populations",
+                deme = ids[mixed.deme],
+                a = ids[a],
+                b = ids[b],
+            ),
+        );
     }
     if rule == Rule::BirthDeath && spec.selection.scope == Scope::Neighbourhood {
         warnings.push(

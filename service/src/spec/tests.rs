@@ -231,6 +231,28 @@ fn a_split_migration_graph_is_accepted_with_warnings_naming_the_unreachable_deme
     assert!(w.contains("never reaches `a`"), "{w}");
 }
 
+#[test]
+fn two_source_groups_feeding_one_deme_are_rejected_because_the_chain_is_never_absorbed() {
+    // `a` and `b` recruit only from themselves and both feed `c`: once `a` holds only the
+    // variant and `b` only residents, `c` keeps flipping forever (the exact system is
+    // singular; ensemble replicates would all run to max_generations)
+    let mut v = base();
+    v["migration"] = json!({"orientation": "recruitment",
+        "matrix": [[1, 0, 0], [0, 1, 0], [0.5, 0.5, 0]]});
+    let p = problems(&v);
+    assert_eq!(p.len(), 1, "{p:?}");
+    assert_eq!(p[0].pointer, "/migration");
+    let text = &p[0].detail;
+    assert!(
+        text.contains("`c` receives lineages from two source groups"),
+        "{text}"
+    );
+    assert!(text.contains("`a`") && text.contains("`b`"), "{text}");
+    // one link from a group into the other leaves a single source group: accepted
+    v["migration"]["matrix"] = json!([[1, 0, 0], [0.1, 0.9, 0], [0.5, 0.5, 0]]);
+    ok(&v);
+}
+
 fn reference(v: &Value) -> String {
     let rows: Vec<Vec<f64>> = serde_json::from_value(v["migration"]["matrix"].clone()).unwrap();
     let hex = crate::provenance::matrix_sha256(rows.len(), rows.iter().flatten().copied());

@@ -513,6 +513,44 @@ fn server_side(metrics: &str) -> Vec<String> {
             ));
         }
     }
+    // the single writer and the WAL checkpoints: where a slow submission waited
+    let histogram = |name: &str, label: &str| -> Option<(f64, f64, f64)> {
+        let series = |suffix: &str, extra: &str| -> f64 {
+            metrics
+                .lines()
+                .filter(|l| {
+                    l.starts_with(&format!("{name}_{suffix}"))
+                        && l.contains(label)
+                        && l.contains(extra)
+                })
+                .filter_map(|l| l.rsplit(' ').next()?.parse::<f64>().ok())
+                .sum()
+        };
+        let count = series("count", "");
+        let slow = count - series("bucket", "le=\"0.02\"");
+        (count > 0.0).then(|| (count, series("sum", "") / count * 1e3, slow))
+    };
+    for op in [
+        "submit",
+        "claim",
+        "heartbeat",
+        "commit_chunk",
+        "finish",
+        "requeue",
+    ] {
+        if let Some((count, mean, slow)) =
+            histogram("demefix_db_write_duration_seconds", &format!("op=\"{op}\""))
+        {
+            lines.push(format!(
+                "writer {op}: {count} writes, mean {mean:.2} ms, {slow} over 20 ms"
+            ));
+        }
+    }
+    if let Some((count, mean, slow)) = histogram("demefix_wal_checkpoint_duration_seconds", "") {
+        lines.push(format!(
+            "WAL checkpoints: {count}, mean {mean:.2} ms, {slow} over 20 ms"
+        ));
+    }
     lines
 }
 

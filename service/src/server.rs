@@ -116,6 +116,17 @@ fn describe_metrics() {
         "Ensemble replicates committed by this process's workers; rate() gives replicates \
          per second."
     );
+    describe_histogram!(
+        "demefix_db_write_duration_seconds",
+        Unit::Seconds,
+        "Time of one write on the single writer connection, waiting for it included, by \
+         operation (submit, claim, heartbeat, commit_chunk, finish, ...)."
+    );
+    describe_histogram!(
+        "demefix_wal_checkpoint_duration_seconds",
+        Unit::Seconds,
+        "Time of one background WAL checkpoint (PASSIVE, on its own connection)."
+    );
     describe_gauge!(
         "demefix_ensemble_chunk_replicates_per_second",
         "Replicates per second of the most recently committed ensemble chunk."

@@ -535,5 +535,18 @@ async fn metrics_count_runs_by_status_the_queue_and_the_replicates_done() {
         .map(|(_, v)| v)
         .sum();
     assert_eq!(posts, 5.0, "every POST /v1/runs was timed: {text}");
+    // every write on the single writer connection is timed by operation
+    let writes = |op: &str| {
+        s.get(&format!(
+            "demefix_db_write_duration_seconds_count{{op=\"{op}\"}}"
+        ))
+        .copied()
+    };
+    assert_eq!(writes("submit"), Some(5.0), "{text}");
+    assert_eq!(writes("cancel"), Some(1.0), "{text}");
+    assert!(writes("claim").is_some_and(|n| n >= 3.0), "{text}");
+    assert!(writes("finish").is_some_and(|n| n >= 2.0), "{text}");
+    // the ensemble committed 4 starts x 6 chunks
+    assert!(writes("commit_chunk").is_some_and(|n| n >= 24.0), "{text}");
     drop(serve);
 }

@@ -44,7 +44,7 @@ use sqlx::sqlite::{
 };
 use sqlx::Row;
 use std::path::Path;
-use std::time::Duration;
+use std::time::{Duration, Instant};
 
 /// How long a connection waits for another process's write lock before giving up.
 const BUSY_TIMEOUT: Duration = Duration::from_secs(10);
@@ -155,6 +155,30 @@ async fn extend_lease(
     Ok(cancel.map(|c| c != 0))
 }
 
+/// Records one writer operation's time, from asking for the writer connection to its commit
+/// or failure, in `demefix_db_write_duration_seconds{op}` when dropped: a submission that
+/// waits behind another writer shows up there, not only in the HTTP latency.
+struct WriteTimer {
+    op: &'static str,
+    started: Instant,
+}
+
+impl WriteTimer {
+    fn start(op: &'static str) -> Self {
+        Self {
+            op,
+            started: Instant::now(),
+        }
+    }
+}
+
+impl Drop for WriteTimer {
+    fn drop(&mut self) {
+        metrics::histogram!("demefix_db_write_duration_seconds", "op" => self.op)
+            .record(self.started.elapsed().as_secs_f64());
+    }
+}
+
 /// Deletes the checkpoint log of run `id`.
 async fn delete_chunks(conn: &mut sqlx::SqliteConnection, id: &str) -> Result<(), DbError> {
     sqlx::query("DELETE FROM run_chunks WHERE run_id = ?")
@@ -248,9 +272,12 @@ impl Store {
     /// calls it every [`WAL_CHECKPOINT_EVERY`]. Returns the frames in the log and those
     /// checkpointed.
     pub async fn checkpoint_wal(&self) -> Result<(i64, i64), DbError> {
+        let started = Instant::now();
         let row = sqlx::query("PRAGMA wal_checkpoint(PASSIVE)")
             .fetch_one(&self.maintenance)
             .await?;
+        metrics::histogram!("demefix_wal_checkpoint_duration_seconds")
+            .record(started.elapsed().as_secs_f64());
         Ok((row.try_get(1)?, row.try_get(2)?))
     }
 
@@ -259,6 +286,7 @@ impl Store {
     /// version answers it: the new run is stored already succeeded with that run's results
     /// ([`domain::reuse`]). All in one `BEGIN IMMEDIATE` transaction.
     pub async fn submit(&self, new: &NewRun) -> Result<Submitted, DbError> {
+        let _timer = WriteTimer::start("submit");
         let mut tx = self.writer.begin_with("BEGIN IMMEDIATE").await?;
         if let Some(key) = &new.idempotency_key {
             let earlier =
@@ -383,6 +411,7 @@ impl Store {
     /// Stores `matrix` under its canonical hash, once: a matrix with the same hash is left
     /// as it is (matrices are immutable) and returned.
     pub async fn store_matrix(&self, matrix: &NewMatrix) -> Result<MatrixStored, DbError> {
+        let _timer = WriteTimer::start("store_matrix");
         let mut tx = self.writer.begin_with("BEGIN IMMEDIATE").await?;
         let created = insert_matrix(&mut tx, matrix, &now_text()).await?;
         let sql = format!("SELECT {MATRIX_COLUMNS} FROM matrices WHERE matrix_sha256 = ?");
@@ -457,6 +486,7 @@ impl Store {
     /// Asks for run `id` to stop: a queued run is cancelled at once, a running one is marked
     /// and its worker stops within a chunk.
     pub async fn cancel(&self, id: &str) -> Result<Cancelled, DbError> {
+        let _timer = WriteTimer::start("cancel");
         let mut tx = self.writer.begin_with("BEGIN IMMEDIATE").await?;
         let status: Option<String> = sqlx::query_scalar("SELECT status FROM runs WHERE id = ?")
             .bind(id)
@@ -517,6 +547,7 @@ impl Store {
     /// worker died): one `UPDATE ... RETURNING`, which hands out a fresh lease token so that
     /// the previous holder can no longer complete it.
     pub async fn claim(&self, token: &str, lease: Duration) -> Result<Option<Claim>, DbError> {
+        let _timer = WriteTimer::start("claim");
         let now = now_ms();
         let at = now_text();
         let mut tx = self.writer.begin_with("BEGIN IMMEDIATE").await?;
@@ -569,6 +600,7 @@ impl Store {
         seq: u64,
         step: &str,
     ) -> Result<Option<bool>, DbError> {
+        let _timer = WriteTimer::start("commit_chunk");
         let mut tx = self.writer.begin_with("BEGIN IMMEDIATE").await?;
         let Some(cancel) = extend_lease(&mut tx, id, token, lease, done).await? else {
             tx.rollback().await?;
@@ -600,6 +632,7 @@ impl Store {
     /// Empties the checkpoint log of run `id` if `token` still holds its lease (the run's
     /// ensembles start afresh). Returns whether the lease still held.
     pub async fn discard_chunks(&self, id: &str, token: &str) -> Result<bool, DbError> {
+        let _timer = WriteTimer::start("discard_chunks");
         let mut tx = self.writer.begin_with("BEGIN IMMEDIATE").await?;
         let held: Option<i64> = sqlx::query_scalar(
             "SELECT 1 FROM runs WHERE id = ? AND lease_token = ? AND status = 'running'",
@@ -633,6 +666,7 @@ impl Store {
         lease: Duration,
         done: u64,
     ) -> Result<Option<bool>, DbError> {
+        let _timer = WriteTimer::start("heartbeat");
         let mut conn = self.writer.acquire().await?;
         extend_lease(&mut conn, id, token, lease, done).await
     }
@@ -640,6 +674,7 @@ impl Store {
     /// Ends run `id` as `finish` says, if `token` still holds its lease (fencing), and drops
     /// its checkpoint log. Returns whether the completion was accepted.
     pub async fn finish(&self, id: &str, token: &str, finish: &Finish) -> Result<bool, DbError> {
+        let _timer = WriteTimer::start("finish");
         let now = now_text();
         let mut tx = self.writer.begin_with("BEGIN IMMEDIATE").await?;
         let result = match finish {
@@ -718,6 +753,7 @@ impl Store {
     /// Puts run `id` back in the queue (shutdown), keeping its checkpoint log, if `token` still
     /// holds its lease.
     pub async fn requeue(&self, id: &str, token: &str) -> Result<bool, DbError> {
+        let _timer = WriteTimer::start("requeue");
         let mut tx = self.writer.begin_with("BEGIN IMMEDIATE").await?;
         let result = sqlx::query(
             "UPDATE runs SET status = 'queued', lease_token = NULL, lease_expires_ms = NULL

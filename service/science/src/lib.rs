@@ -32,4 +32,4 @@ pub use start::Start;
 
 /// Version of the numerical methods. Bump whenever any numeric output for a fixed input,
 /// seed and version could change (a new sampling algorithm, a different solver tolerance).
-pub const METHOD_VERSION: &str = "0.3.0";
+pub const METHOD_VERSION: &str = "0.3.1";

@@ -19,7 +19,7 @@
 //! `tests/openapi/schemathesis.toml` holds the settings a check needs on this API, each with
 //! its reason, and `tests/openapi/hooks.py` the one case where a check does not apply.
 //!
-//! Run alone: `cargo test -p demefix --test openapi_conformance -- --nocapture` (about 25 s
+//! Run alone: `cargo test -p demefix --test openapi_conformance -- --nocapture` (15 to 30 s
 //! after the build).
 
 #[allow(dead_code)]

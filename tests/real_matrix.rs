@@ -27,12 +27,15 @@
 //!
 //! Run alone: `cargo test -p demefix --test real_matrix` (about 10 s after the build).
 
+#[path = "support/outside.rs"]
+mod outside;
+
 use demefix::spec::{self, Limits};
 use demefix_science::approx::strong_migration;
 use demefix_science::weak;
 use serde_json::Value;
 use sha2::{Digest, Sha256};
-use std::path::{Path, PathBuf};
+use std::path::PathBuf;
 use std::process::{Command, Output};
 use std::sync::OnceLock;
 
@@ -63,18 +66,9 @@ fn scripts() -> PathBuf {
     PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("tests/real_data")
 }
 
-/// `$DEMEFIX_REAL_DATA_DIR`, else `real-data` in the target folder that holds this build's
-/// binary (`<target>/<profile>/demefix`).
+/// `$DEMEFIX_REAL_DATA_DIR`, else `real-data` in the target folder.
 fn data_dir() -> PathBuf {
-    if let Some(dir) = std::env::var_os("DEMEFIX_REAL_DATA_DIR") {
-        return PathBuf::from(dir);
-    }
-    let binary = PathBuf::from(env!("CARGO_BIN_EXE_demefix"));
-    let target = binary
-        .parent()
-        .and_then(Path::parent)
-        .expect("the binary lives in <target>/<profile>/");
-    target.join("real-data")
+    outside::fetched_dir("DEMEFIX_REAL_DATA_DIR", "real-data")
 }
 
 fn python(script: &str, args: &[&str]) -> Output {

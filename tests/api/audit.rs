@@ -248,3 +248,27 @@ async fn a_succeeded_run_exports_w3c_prov_json_naming_recomputable_hashes() {
     assert_eq!(early.status(), 409);
     app.stop().await;
 }
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn the_audit_cursor_takes_every_sqlite_position_and_nothing_beyond() {
+    let app = spawn_app().await;
+    // 2^63 - 1, the largest SQLite integer (openapi.yaml's maximum of `after`): an empty page.
+    let last = app.get(&format!("/v1/audit?after={}", i64::MAX)).await;
+    assert_eq!(last.status(), 200);
+    let page: Value = last.json().await.unwrap();
+    assert_eq!(page["entries"].as_array().unwrap().len(), 0);
+    assert!(page["next_after"].is_null());
+    for bad in [
+        format!("/v1/audit?after={}", i64::MAX as u64 + 1),
+        "/v1/audit?after=99999999999999999999999".to_owned(),
+        "/v1/audit?after=-1".to_owned(),
+    ] {
+        let res = app.get(&bad).await;
+        assert_eq!(res.status(), 400, "{bad}");
+        assert_eq!(
+            res.headers()["content-type"].to_str().unwrap(),
+            "application/problem+json"
+        );
+    }
+    app.stop().await;
+}

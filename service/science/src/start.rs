@@ -46,7 +46,9 @@ pub struct DemeAnswer {
 }
 
 /// Mixes per-deme answers by start weights: probabilities and absorption times average
-/// linearly, conditional fixation times average weighted by the chance of fixing.
+/// linearly, conditional fixation times average weighted by the chance of fixing. The mixed
+/// probability is kept in `[0, 1]` (weights that sum to 1 up to round-off can carry a mix of
+/// answers at 1 just above it).
 pub fn combine(weights: &[f64], per_deme: &[DemeAnswer]) -> DemeAnswer {
     let mut rho = 0.0;
     let mut abs = 0.0;
@@ -61,6 +63,7 @@ pub fn combine(weights: &[f64], per_deme: &[DemeAnswer]) -> DemeAnswer {
             fix_weighted += w * a.fixation_probability * a.mean_fixation_generations;
         }
     }
+    let rho = rho.clamp(0.0, 1.0);
     DemeAnswer {
         fixation_probability: rho,
         mean_absorption_generations: abs,

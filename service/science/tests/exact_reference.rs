@@ -85,6 +85,41 @@ fn one_deme_event_rules_match_the_moran_fixation_table() {
 }
 
 #[test]
+fn near_certain_fixation_stays_a_probability() {
+    // Strong selection puts the answer within round-off of 1 (1 - 1/r); the linear solve's
+    // round-off must not carry it above 1 (it did, by 1.3e-15, for one deme of 1,680). Found
+    // by the schemathesis run of tests/openapi_conformance.rs (Result.fixation_probability
+    // has maximum 1).
+    let sizes_and_rows: [(&[u64], Vec<Vec<f64>>); 2] = [
+        (&[1680], vec![vec![1.0]]),
+        (&[40, 30], vec![vec![0.9, 0.1], vec![0.3, 0.7]]),
+    ];
+    for (sizes, rows) in &sizes_and_rows {
+        for rule in [Rule::DeathBirth, Rule::BirthDeath] {
+            for s in [3.0, 1e6, 5.3e15, 4.4e16, 4e118] {
+                let m = model(sizes, rows, rule, Scope::Deme, s);
+                let per_deme = solve(&m);
+                let mut answers = per_deme.clone();
+                for start in [Start::Uniform, Start::AtBirth] {
+                    answers.push(start::combine(&start.deme_weights(&m), &per_deme));
+                }
+                for a in answers {
+                    let p = a.fixation_probability;
+                    assert!(
+                        (0.0..=1.0).contains(&p),
+                        "{rule:?} sizes {sizes:?} s={s}: fixation probability {p:e}"
+                    );
+                }
+                if sizes.len() == 1 {
+                    let p = per_deme[0].fixation_probability;
+                    assert_close(p, moran(1.0 + s, sizes[0]), 1e-12, "closed form");
+                }
+            }
+        }
+    }
+}
+
+#[test]
 fn one_deme_times_match_the_moran_time_table_in_generations() {
     // Antal & Scheuring (2006) Bull. Math. Biol. 68:1923-1944 and Ewens (2004) Mathematical
     // Population Genetics I (formulas from memory); check values of references.md section 1.2,

@@ -21,9 +21,17 @@ pub async fn page(
     for (k, v) in query.into_inner() {
         match k.as_str() {
             "after" => {
-                after = v.parse().map_err(|_| {
-                    ApiError::BadRequest(format!("`after` must be an entry position, not {v:?}"))
-                })?
+                // Positions are SQLite integers: at most 2^63 - 1 (as openapi.yaml says).
+                after = v
+                    .parse::<u64>()
+                    .ok()
+                    .filter(|n| i64::try_from(*n).is_ok())
+                    .ok_or_else(|| {
+                        ApiError::BadRequest(format!(
+                            "`after` must be an entry position from 0 to {}, not {v:?}",
+                            i64::MAX
+                        ))
+                    })?
             }
             "limit" => {
                 limit = v

@@ -245,7 +245,7 @@ pub fn solve(model: &Model, config: &ExactConfig) -> Result<ExactSolution, Exact
             }
             let i = start - 1;
             let h = if unreachable[deme].is_empty() {
-                solutions.h[i]
+                probability(solutions.h[i])
             } else {
                 0.0
             };
@@ -270,6 +270,13 @@ pub fn solve(model: &Model, config: &ExactConfig) -> Result<ExactSolution, Exact
             iterations: solutions.iterations,
         },
     })
+}
+
+/// A solved fixation probability as a probability: the linear solve's round-off can carry an
+/// answer within about 1e-15 of 0 or 1 just outside `[0, 1]` (near-certain fixation under
+/// strong selection); it is put back on the bound. `NaN` stays `NaN`.
+fn probability(h: f64) -> f64 {
+    h.clamp(0.0, 1.0)
 }
 
 /// Sets `h` and `w` to exactly 0 on the states from which fixation cannot be reached (only
@@ -372,7 +379,11 @@ pub fn sensitivity(
     };
     let partials = gradient::partials(model, &space, &fields, &entries);
     let dot = |x: &[f64]| c.iter().zip(x).map(|(a, b)| a * b).sum::<f64>();
-    let (h, t, w) = (dot(&solutions.h), dot(&solutions.t), dot(&solutions.w));
+    let (h, t, w) = (
+        probability(dot(&solutions.h)),
+        dot(&solutions.t),
+        dot(&solutions.w),
+    );
     let steps = model.total() as f64;
     let tau = if h > 0.0 { w / h } else { f64::NAN };
     let d_tau: Vec<f64> = partials

@@ -225,6 +225,39 @@ async fn an_unknown_run_is_a_404_problem() {
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_known_path_with_another_method_is_a_405_problem_naming_the_allowed_methods() {
+    let app = spawn_app().await;
+    for (method, path, allow) in [
+        (reqwest::Method::DELETE, "/v1/runs", "POST, GET"),
+        (
+            reqwest::Method::PUT,
+            "/v1/runs/01900000-0000-7000-8000-000000000000",
+            "GET",
+        ),
+        (reqwest::Method::GET, "/v1/matrices", "POST"),
+        (reqwest::Method::POST, "/healthz", "GET"),
+    ] {
+        let res = app
+            .client
+            .request(method.clone(), app.url(path))
+            .send()
+            .await
+            .unwrap();
+        assert_eq!(res.status(), 405, "{method} {path}");
+        assert_eq!(res.headers()["allow"].to_str().unwrap(), allow);
+        assert_eq!(
+            res.headers()["content-type"].to_str().unwrap(),
+            "application/problem+json"
+        );
+        let doc: Value = res.json().await.unwrap();
+        assert_eq!(doc["status"], 405);
+        assert_eq!(doc["title"], "Method not allowed");
+    }
+    assert_eq!(app.stored_runs().await, 0);
+    app.stop().await;
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn an_oversize_body_is_a_413_problem_and_stores_nothing() {
     let app = spawn_app_with(|raw| raw.body_limit = Some("2048".to_owned())).await;
     let mut job = small_job();

@@ -37,6 +37,11 @@ pub enum ApiError {
         /// Its status (`queued` or `running`).
         status: &'static str,
     },
+    /// The path exists but not with this method: 405 with `Allow`.
+    MethodNotAllowed {
+        /// The methods the path answers, as the `Allow` header lists them.
+        allow: String,
+    },
     /// The body's media type is not one the route reads: 415.
     UnsupportedMediaType(String),
     /// The body exceeds the limit: 413.
@@ -74,6 +79,9 @@ impl fmt::Display for ApiError {
             | ApiError::Unavailable(m) => f.write_str(m),
             ApiError::PayloadTooLarge { limit } => {
                 write!(f, "the request body exceeds the limit of {limit} bytes")
+            }
+            ApiError::MethodNotAllowed { allow } => {
+                write!(f, "this path answers {allow} only; see /openapi.yaml")
             }
             ApiError::NotFinished { run_id, status } => write!(
                 f,
@@ -117,6 +125,7 @@ impl ResponseError for ApiError {
             ApiError::NotFound(_) => StatusCode::NOT_FOUND,
             ApiError::Conflict(_) | ApiError::NotFinished { .. } => StatusCode::CONFLICT,
             ApiError::PayloadTooLarge { .. } => StatusCode::PAYLOAD_TOO_LARGE,
+            ApiError::MethodNotAllowed { .. } => StatusCode::METHOD_NOT_ALLOWED,
             ApiError::UnsupportedMediaType(_) => StatusCode::UNSUPPORTED_MEDIA_TYPE,
             ApiError::Unavailable(_) => StatusCode::SERVICE_UNAVAILABLE,
             ApiError::Internal(_) => StatusCode::INTERNAL_SERVER_ERROR,
@@ -142,6 +151,9 @@ impl ResponseError for ApiError {
             ApiError::PayloadTooLarge { .. } => {
                 ("/problems/payload-too-large", "Payload too large")
             }
+            ApiError::MethodNotAllowed { .. } => {
+                ("/problems/method-not-allowed", "Method not allowed")
+            }
             ApiError::UnsupportedMediaType(_) => {
                 ("/problems/unsupported-media-type", "Unsupported media type")
             }
@@ -160,6 +172,9 @@ impl ResponseError for ApiError {
             ApiError::Unavailable(_) | ApiError::NotFinished { .. }
         ) {
             response.insert_header((header::RETRY_AFTER, "1"));
+        }
+        if let ApiError::MethodNotAllowed { allow } = self {
+            response.insert_header((header::ALLOW, allow.as_str()));
         }
         let run_id = match self {
             ApiError::IdempotencyKeyReused { run_id } | ApiError::NotFinished { run_id, .. } => {

@@ -68,39 +68,54 @@ pub struct AppState {
     pub metrics: PrometheusHandle,
 }
 
-/// Registers every route of [`ROUTES`] and the problem-document fallback.
+/// Registers every route of [`ROUTES`] and the problem-document fallbacks (404 for an
+/// unknown path, 405 with `Allow` for a known path with another method).
 pub fn routes(cfg: &mut web::ServiceConfig) {
     cfg.service(
-        web::resource("/v1/runs")
+        resource("/v1/runs")
             .route(web::post().to(runs::create))
             .route(web::get().to(runs::list)),
     )
-    .service(web::resource("/v1/runs/{id}").route(web::get().to(runs::get)))
-    .service(web::resource("/v1/runs/{id}/report").route(web::get().to(reports::get)))
-    .service(web::resource("/v1/runs/{id}/cancel").route(web::post().to(runs::cancel)))
-    .service(web::resource("/v1/runs/{id}/provenance").route(web::get().to(runs::provenance)))
-    .service(web::resource("/v1/runs/{id}/verify").route(web::post().to(verifications::request)))
-    .service(
-        web::resource("/v1/runs/{id}/verifications").route(web::get().to(verifications::of_run)),
-    )
-    .service(web::resource("/v1/verifications/{id}").route(web::get().to(verifications::one)))
-    .service(web::resource("/v1/matrices").route(web::post().to(matrices::create)))
-    .service(web::resource("/v1/matrices/{sha256}").route(web::get().to(matrices::get)))
-    .service(web::resource("/v1/series").route(web::get().to(series::list)))
-    .service(web::resource("/v1/series/{name}").route(web::get().to(series::one)))
-    .service(web::resource("/v1/series/{name}/changes").route(web::get().to(series::changes)))
-    .service(web::resource("/v1/audit").route(web::get().to(audit::page)))
-    .service(web::resource("/v1/audit/verify").route(web::get().to(audit::verify)))
-    .service(web::resource("/healthz").route(web::get().to(healthz)))
-    .service(web::resource("/readyz").route(web::get().to(readyz)))
-    .service(web::resource("/metrics").route(web::get().to(metrics_text)))
-    .service(web::resource("/openapi.yaml").route(web::get().to(openapi)))
+    .service(resource("/v1/runs/{id}").route(web::get().to(runs::get)))
+    .service(resource("/v1/runs/{id}/report").route(web::get().to(reports::get)))
+    .service(resource("/v1/runs/{id}/cancel").route(web::post().to(runs::cancel)))
+    .service(resource("/v1/runs/{id}/provenance").route(web::get().to(runs::provenance)))
+    .service(resource("/v1/runs/{id}/verify").route(web::post().to(verifications::request)))
+    .service(resource("/v1/runs/{id}/verifications").route(web::get().to(verifications::of_run)))
+    .service(resource("/v1/verifications/{id}").route(web::get().to(verifications::one)))
+    .service(resource("/v1/matrices").route(web::post().to(matrices::create)))
+    .service(resource("/v1/matrices/{sha256}").route(web::get().to(matrices::get)))
+    .service(resource("/v1/series").route(web::get().to(series::list)))
+    .service(resource("/v1/series/{name}").route(web::get().to(series::one)))
+    .service(resource("/v1/series/{name}/changes").route(web::get().to(series::changes)))
+    .service(resource("/v1/audit").route(web::get().to(audit::page)))
+    .service(resource("/v1/audit/verify").route(web::get().to(audit::verify)))
+    .service(resource("/healthz").route(web::get().to(healthz)))
+    .service(resource("/readyz").route(web::get().to(readyz)))
+    .service(resource("/metrics").route(web::get().to(metrics_text)))
+    .service(resource("/openapi.yaml").route(web::get().to(openapi)))
     .default_service(web::to(not_found));
+}
+
+/// A resource at `path` whose other methods are answered 405, with `Allow` listing the
+/// methods [`ROUTES`] gives the path.
+fn resource(path: &str) -> actix_web::Resource {
+    let allow: Vec<&str> = ROUTES
+        .iter()
+        .filter(|(_, p)| *p == path)
+        .map(|(m, _)| *m)
+        .collect();
+    assert!(!allow.is_empty(), "{path} is not in ROUTES");
+    let allow = allow.join(", ");
+    web::resource(path).default_service(web::to(move || {
+        let allow = allow.clone();
+        async move { Err::<HttpResponse, _>(ApiError::MethodNotAllowed { allow }) }
+    }))
 }
 
 async fn not_found() -> Result<HttpResponse, ApiError> {
     Err(ApiError::NotFound(
-        "no such resource (or method); see /openapi.yaml".to_owned(),
+        "no such resource; see /openapi.yaml".to_owned(),
     ))
 }
 

@@ -102,24 +102,17 @@ fn run_lanes<R: Rng, F: Fn(u64) -> R, const K: u8, const C: usize>(
         let s = Small::<C>::load(rep, t);
         return Some(Lane { q, rng, s });
     };
-    let [rep_a, rep_b] = reps;
-    let mut a = begin(rep_a, &mut out);
-    let mut b = begin(rep_b, &mut out);
-    while a.is_some() || b.is_some() {
-        if let Some(lane) = a.as_mut() {
-            if let Status::Done(e) = rep_a.small_step::<R, K, C>(&mut lane.s, &st, t, &mut lane.rng)
-            {
-                rep_a.finish_small(&lane.s, t);
-                out[(lane.q - first) as usize] = Some(rep_a.outcome(e));
-                a = begin(rep_a, &mut out);
-            }
-        }
-        if let Some(lane) = b.as_mut() {
-            if let Status::Done(e) = rep_b.small_step::<R, K, C>(&mut lane.s, &st, t, &mut lane.rng)
-            {
-                rep_b.finish_small(&lane.s, t);
-                out[(lane.q - first) as usize] = Some(rep_b.outcome(e));
-                b = begin(rep_b, &mut out);
+    let mut lanes: [Option<Lane<R, C>>; LANES] = std::array::from_fn(|_| None);
+    for (lane, rep) in lanes.iter_mut().zip(reps.iter_mut()) {
+        *lane = begin(rep, &mut out);
+    }
+    while lanes.iter().any(Option::is_some) {
+        for (lane, rep) in lanes.iter_mut().zip(reps.iter_mut()) {
+            let Some(run) = lane.as_mut() else { continue };
+            if let Status::Done(e) = rep.small_step::<R, K, C>(&mut run.s, &st, t, &mut run.rng) {
+                rep.finish_small(&run.s, t);
+                out[(run.q - first) as usize] = Some(rep.outcome(e));
+                *lane = begin(rep, &mut out);
             }
         }
     }
